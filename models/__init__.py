@@ -1,0 +1,49 @@
+"""The model layer: validated counts in, one posterior format out.
+
+Never imports ``workbench``.
+"""
+
+from __future__ import annotations
+
+from ._data import GroupCounts
+from ._grid import HyperPrior
+from ._model import MODELS, SUMMARY_COLUMNS, BetaBinomial, CompletePooling, NoPooling, make_model
+from ._posterior import (
+    add_log_likelihood,
+    attr,
+    counts_of,
+    log_likelihood_arrays,
+    theta_draws,
+    versions,
+)
+from .exceptions import (
+    ConvergenceWarning,
+    DataError,
+    NotFittedError,
+    ParameterError,
+    SamplingError,
+    WorkbenchError,
+)
+
+__all__ = [
+    "BetaBinomial",
+    "CompletePooling",
+    "ConvergenceWarning",
+    "DataError",
+    "GroupCounts",
+    "HyperPrior",
+    "MODELS",
+    "NoPooling",
+    "NotFittedError",
+    "ParameterError",
+    "SUMMARY_COLUMNS",
+    "SamplingError",
+    "WorkbenchError",
+    "add_log_likelihood",
+    "attr",
+    "counts_of",
+    "log_likelihood_arrays",
+    "make_model",
+    "theta_draws",
+    "versions",
+]

@@ -1,0 +1,139 @@
+"""Closed-form group posteriors: independent Betas and mixtures of Betas over a grid."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special, stats
+
+#: Most unique-pair x component cells for which mixture quantiles are solved exactly.
+EXACT_QUANTILE_CELLS = 10_000_000
+_CHUNK_CELLS = 4_000_000
+
+
+class BetaPosteriors:
+    """Independent Beta(alpha_j, beta_j) posteriors, one per group."""
+
+    exact_quantiles = True
+
+    def __init__(self, alpha: np.ndarray, beta: np.ndarray) -> None:
+        self.alpha = np.asarray(alpha, dtype=float)
+        self.beta = np.asarray(beta, dtype=float)
+
+    def mean(self) -> np.ndarray:
+        return self.alpha / (self.alpha + self.beta)
+
+    def ppf(self, q: float) -> np.ndarray:
+        return stats.beta.ppf(q, self.alpha, self.beta)
+
+    def sf(self, x: float) -> np.ndarray:
+        return stats.beta.sf(x, self.alpha, self.beta)
+
+    def cdf(self, x: float) -> np.ndarray:
+        return stats.beta.cdf(x, self.alpha, self.beta)
+
+
+class BetaMixturePosteriors:
+    """theta_j | data = sum_p w_p Beta(a_p + y_j, b_p + n_j - y_j): the exact hierarchy's answer.
+
+    Groups sharing (successes, trials) share a posterior, so everything is computed once per
+    unique pair and mapped back with ``index``.
+    """
+
+    def __init__(
+        self,
+        weights: np.ndarray,
+        a: np.ndarray,
+        b: np.ndarray,
+        pair_successes: np.ndarray,
+        pair_trials: np.ndarray,
+        index: np.ndarray,
+    ) -> None:
+        self.weights = weights / weights.sum()
+        self.a = a
+        self.b = b
+        self.y = pair_successes.astype(float)
+        self.n = pair_trials.astype(float)
+        self.index = index
+        cells = len(self.y) * len(self.weights)
+        self.exact_quantiles = cells <= EXACT_QUANTILE_CELLS
+
+    def _chunks(self):
+        step = max(1, _CHUNK_CELLS // max(len(self.weights), 1))
+        for start in range(0, len(self.y), step):
+            sl = slice(start, start + step)
+            alpha = self.a[None, :] + self.y[sl, None]
+            beta = self.b[None, :] + (self.n[sl] - self.y[sl])[:, None]
+            yield sl, alpha, beta
+
+    def _pair_mean(self) -> np.ndarray:
+        out = np.empty(len(self.y))
+        for sl, alpha, beta in self._chunks():
+            out[sl] = (alpha / (alpha + beta)) @ self.weights
+        return out
+
+    def mean(self) -> np.ndarray:
+        return self._pair_mean()[self.index]
+
+    def moments(self) -> tuple[np.ndarray, np.ndarray]:
+        """Exact posterior mean and variance per group."""
+        m1 = np.empty(len(self.y))
+        m2 = np.empty(len(self.y))
+        for sl, alpha, beta in self._chunks():
+            s = alpha + beta
+            m1[sl] = (alpha / s) @ self.weights
+            m2[sl] = (alpha * (alpha + 1) / (s * (s + 1))) @ self.weights
+        return m1[self.index], (m2 - m1**2)[self.index]
+
+    def _pair_cdf(self, x: np.ndarray) -> np.ndarray:
+        out = np.empty(len(self.y))
+        for sl, alpha, beta in self._chunks():
+            out[sl] = special.betainc(alpha, beta, x[sl, None]) @ self.weights
+        return out
+
+    def _pair_pdf(self, x: np.ndarray) -> np.ndarray:
+        out = np.empty(len(self.y))
+        for sl, alpha, beta in self._chunks():
+            xs = x[sl, None]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                logpdf = (
+                    special.xlogy(alpha - 1, xs)
+                    + special.xlog1py(beta - 1, -xs)
+                    - special.betaln(alpha, beta)
+                )
+            out[sl] = np.exp(logpdf) @ self.weights
+        return out
+
+    def cdf(self, x: float) -> np.ndarray:
+        return self._pair_cdf(np.full(len(self.y), float(x)))[self.index]
+
+    def sf(self, x: float) -> np.ndarray:
+        return 1.0 - self.cdf(x)
+
+    def ppf(self, q: float, *, tol: float = 1e-10, max_iter: int = 60) -> np.ndarray:
+        """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile."""
+        m1 = np.empty(len(self.y))
+        m2 = np.empty(len(self.y))
+        for sl, alpha, beta in self._chunks():
+            s = alpha + beta
+            m1[sl] = (alpha / s) @ self.weights
+            m2[sl] = (alpha * (alpha + 1) / (s * (s + 1))) @ self.weights
+        var = np.maximum(m2 - m1**2, 1e-300)
+        common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
+        x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
+        lo = np.zeros_like(x)
+        hi = np.ones_like(x)
+        active = np.ones(len(x), dtype=bool)
+        for _ in range(max_iter):
+            f = self._pair_cdf(x) - q
+            lo = np.where(active & (f < 0), x, lo)
+            hi = np.where(active & (f >= 0), x, hi)
+            step = f / np.maximum(self._pair_pdf(x), 1e-300)
+            new = x - step
+            outside = (new < lo) | (new > hi) | ~np.isfinite(new)
+            new = np.where(outside, 0.5 * (lo + hi), new)
+            new = np.where(active, new, x)
+            active &= (np.abs(new - x) >= tol) & (hi - lo >= tol) & (np.abs(f) > 1e-14)
+            x = new
+            if not active.any():
+                break
+        return x[self.index]

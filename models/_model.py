@@ -1,0 +1,434 @@
+"""The estimators: settings in __init__, learning in fit, learned state ends in ``_``."""
+
+from __future__ import annotations
+
+import time
+import warnings
+from typing import ClassVar
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from ._data import GroupCounts
+from ._grid import HyperPrior, fit_grid
+from ._mcmc import SamplerSettings, sample_hyper
+from ._mixture import BetaMixturePosteriors, BetaPosteriors
+from ._posterior import add_log_likelihood, make_idata
+from .exceptions import NotFittedError, ParameterError
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+
+#: Columns of summary(), in order; later tables append their own.
+SUMMARY_COLUMNS = [
+    "group",
+    "successes",
+    "trials",
+    "observed_rate",
+    "posterior_mean",
+    "posterior_median",
+    "lower",
+    "upper",
+    "shrinkage",
+]
+
+
+def _check_level(level: float) -> float:
+    if not (isinstance(level, int | float) and 0 < level < 1):
+        raise ParameterError(f"level={level!r} is not between 0 and 1; use e.g. 0.95.")
+    return float(level)
+
+
+def _check_rate(value: float, what: str) -> float:
+    if not (isinstance(value, int | float) and 0 < value < 1):
+        raise ParameterError(f"{what}={value!r} is not strictly between 0 and 1.")
+    return float(value)
+
+
+class _Estimator:
+    """Shared fit/summary machinery. Subclasses fill ``_fit`` and the closed forms."""
+
+    name: ClassVar[str]
+    engines: ClassVar[tuple[str, ...]]
+
+    def __init__(
+        self,
+        *,
+        engine: str = "auto",
+        draws: int = 1000,
+        chains: int = 4,
+        random_seed: int | None = None,
+    ) -> None:
+        self.engine = engine
+        self.draws = draws
+        self.chains = chains
+        self.random_seed = random_seed
+
+    # -- settings -------------------------------------------------------------------------
+    def _check_params(self) -> None:
+        allowed = ("auto",) + self.engines
+        if self.engine not in allowed:
+            quoted = ", ".join(repr(e) for e in allowed)
+            raise ParameterError(f"engine={self.engine!r} is not one of {quoted} for {self.name}.")
+        for what in ("draws", "chains"):
+            value = getattr(self, what)
+            if not isinstance(value, int | np.integer) or value < 1:
+                raise ParameterError(f"{what}={value!r} must be a whole number >= 1.")
+        if self.random_seed is not None and (
+            not isinstance(self.random_seed, int | np.integer) or self.random_seed < 0
+        ):
+            raise ParameterError(f"random_seed={self.random_seed!r} must be an integer >= 0.")
+
+    @property
+    def engine_(self) -> str:
+        self._require_fitted()
+        return self._engine_used
+
+    def _require_fitted(self) -> None:
+        if not hasattr(self, "idata_"):
+            raise NotFittedError(f"this {type(self).__name__} is not fitted yet; call fit(data).")
+
+    # -- fit ------------------------------------------------------------------------------
+    def fit(self, data: GroupCounts) -> _Estimator:
+        """Fit to ``data`` and return ``self``."""
+        self._check_params()
+        if not isinstance(data, GroupCounts):
+            raise ParameterError(f"fit() needs a GroupCounts; got {type(data).__name__}.")
+        seed = (
+            int(self.random_seed)
+            if self.random_seed is not None
+            else int(np.random.SeedSequence().generate_state(1)[0] % (2**31))
+        )
+        engine = self.engines[0] if self.engine == "auto" else self.engine
+        started = time.perf_counter()
+        theta, theta_new, hyper, extra_attrs, sample_stats = self._fit(data, engine, seed)
+        attrs = {
+            "model": self.name,
+            "engine": engine,
+            "priors": self._priors(),
+            "random_seed": seed,
+            "draws": self.draws,
+            "chains": self.chains,
+            "independent_draws": engine == "exact",
+            **extra_attrs,
+        }
+        idata = make_idata(
+            data, theta, theta_new=theta_new, hyper=hyper, attrs=attrs, sample_stats=sample_stats
+        )
+        add_log_likelihood(idata)
+        self.fit_seconds_ = time.perf_counter() - started
+        self.seed_ = seed
+        self.groups_ = data.names
+        self.data_ = data
+        self._engine_used = engine
+        self.idata_ = idata
+        return self
+
+    # -- results --------------------------------------------------------------------------
+    def summary(self, level: float = 0.95, *, target: float | None = None) -> pd.DataFrame:
+        """One row per group, columns ``SUMMARY_COLUMNS`` then ``prob_above_target``.
+
+        Exact fits use closed forms (``exact_``); MCMC fits use the draws.
+        """
+        self._require_fitted()
+        level = _check_level(level)
+        data = self.data_
+        lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
+        exact = getattr(self, "exact_", None)
+        if exact is not None and exact.exact_quantiles:
+            mean = exact.mean()
+            median, lower, upper = exact.ppf(0.5), exact.ppf(lo_q), exact.ppf(hi_q)
+        else:
+            th = self.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
+            mean = exact.mean() if exact is not None else th.mean(axis=1)
+            lower, median, upper = np.quantile(th, [lo_q, 0.5, hi_q], axis=1)
+        table = pd.DataFrame(
+            {
+                "group": data.names.astype(str),
+                "successes": data.successes,
+                "trials": data.trials,
+                "observed_rate": data.observed_rate,
+                "posterior_mean": mean,
+                "posterior_median": median,
+                "lower": lower,
+                "upper": upper,
+                "shrinkage": self._shrinkage(),
+            }
+        )
+        if target is not None:
+            target = _check_rate(target, "target")
+            if exact is not None:
+                above = exact.sf(target)
+            else:
+                th = self.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
+                above = (th > target).mean(axis=1)
+            table["prob_above_target"] = np.clip(above, 0.0, 1.0)
+        return table
+
+    def population(self, level: float = 0.95) -> pd.DataFrame:
+        """Population quantities with central intervals: one row each.
+
+        ``population_mean`` (mu), ``concentration`` (kappa; larger = groups more alike),
+        ``between_group_sd`` (sd of true rates across groups), ``new_group_rate`` (the rate of
+        a new, unseen group: the posterior predictive).
+        """
+        self._require_fitted()
+        level = _check_level(level)
+        post = self.idata_.posterior
+        rows = []
+        for name in ("mu", "kappa", "between_group_sd", "theta_new"):
+            if name not in post:
+                continue
+            x = post[name].values.ravel()
+            lo, med, hi = np.quantile(x, [(1 - level) / 2, 0.5, (1 + level) / 2])
+            rows.append((name, float(x.mean()), float(med), float(lo), float(hi)))
+        labels = {
+            "mu": "population_mean",
+            "kappa": "concentration",
+            "between_group_sd": "between_group_sd",
+            "theta_new": "new_group_rate",
+        }
+        table = pd.DataFrame(rows, columns=["quantity", "mean", "median", "lower", "upper"])
+        table.insert(1, "parameter", table["quantity"])
+        table["quantity"] = table["quantity"].map(labels)
+        return table
+
+    def _shrinkage(self) -> np.ndarray:
+        """Posterior mean of kappa / (kappa + n_j): weight on the population mean."""
+        raise NotImplementedError
+
+    def _priors(self) -> dict:
+        raise NotImplementedError
+
+    def _fit(self, data, engine, seed):
+        raise NotImplementedError
+
+
+class _Conjugate(_Estimator):
+    """A Beta(a, b) prior on each rate; exact closed forms."""
+
+    engines = ("exact",)
+
+    def __init__(self, *, a: float = 1.0, b: float = 1.0, **kwargs) -> None:
+        super().__init__(**kwargs)
+        self.a = a
+        self.b = b
+
+    def _check_params(self) -> None:
+        super()._check_params()
+        for what in ("a", "b"):
+            value = getattr(self, what)
+            if not (isinstance(value, int | float) and value > 0 and np.isfinite(value)):
+                raise ParameterError(f"{what}={value!r} must be a positive number.")
+
+    def _priors(self) -> dict:
+        return {"theta": f"Beta({self.a:g}, {self.b:g})", "a": self.a, "b": self.b}
+
+
+class NoPooling(_Conjugate):
+    """Every group on its own: theta_j ~ Beta(a, b) independently, conjugate and exact.
+
+    ``a = b = 1`` is the uniform prior; ``a = b = 0.5`` the Jeffreys prior.
+    """
+
+    name = "no-pooling"
+
+    def _fit(self, data, engine, seed):
+        rng = np.random.default_rng(seed)
+        alpha = self.a + data.successes
+        beta = self.b + data.trials - data.successes
+        self.exact_ = BetaPosteriors(alpha, beta)
+        size = (self.chains, self.draws, data.n_groups)
+        theta = rng.beta(alpha, beta, size=size)
+        theta_new = rng.beta(self.a, self.b, size=(self.chains, self.draws))
+        return theta, theta_new, {}, {}, None
+
+    def _shrinkage(self) -> np.ndarray:
+        k = self.a + self.b
+        return k / (k + self.data_.trials)
+
+
+class CompletePooling(_Conjugate):
+    """One shared rate for every group: theta ~ Beta(a + sum y, b + sum (n - y))."""
+
+    name = "complete-pooling"
+
+    def _fit(self, data, engine, seed):
+        rng = np.random.default_rng(seed)
+        alpha = self.a + data.successes.sum()
+        beta = self.b + (data.trials - data.successes).sum()
+        self.exact_ = BetaPosteriors(
+            np.full(data.n_groups, float(alpha)), np.full(data.n_groups, float(beta))
+        )
+        shared = rng.beta(alpha, beta, size=(self.chains, self.draws))
+        theta = np.repeat(shared[:, :, None], data.n_groups, axis=2)
+        hyper = {"mu": shared, "between_group_sd": np.zeros_like(shared)}
+        return theta, shared.copy(), hyper, {}, None
+
+    def _shrinkage(self) -> np.ndarray:
+        return np.ones(self.data_.n_groups)
+
+
+class BetaBinomial(_Estimator):
+    """Partial pooling: theta_j ~ Beta(mu kappa, (1 - mu) kappa).
+
+    ``mu`` is the population mean rate; ``kappa`` the concentration: how alike the groups
+    are (the prior weight, in trials, that the population carries in each group's estimate;
+    a group's estimate moves toward ``mu`` by ``kappa / (kappa + trials)``). Default priors:
+    mu ~ Beta(1, 1) (uniform: no view on the typical rate) and
+    log kappa ~ Normal(log 20, 3), whose central 95% runs from kappa 0.06 (groups almost
+    unrelated: weak pooling) to 7,000 (groups nearly identical: strong pooling), with
+    essentially no mass above 1e8, where the Beta-binomial log-probability loses accuracy.
+
+    Parameters
+    ----------
+    engine : {"auto", "exact", "mcmc"}, default="auto"
+        ``exact`` (``auto``): quadrature over (logit mu, log kappa), independent draws.
+        ``mcmc``: PyMC NUTS on the collapsed posterior, theta drawn conditionally.
+    draws, chains : int
+        Draws per chain and number of chains (independent draws for ``exact``).
+    tune : int, default=1000
+        NUTS warm-up steps per chain (``mcmc``).
+    target_accept : float, default=0.9
+        NUTS target acceptance (``mcmc``).
+    mu_prior : (float, float), default=(1, 1)
+        Beta prior on the population mean rate.
+    kappa_prior : (float, float), default=(20, 3)
+        Median and log-scale sd of the LogNormal prior on the concentration.
+
+    Attributes
+    ----------
+    idata_ : arviz.InferenceData
+    exact_ : BetaMixturePosteriors (exact engine)
+    grid_ : GridPosterior (exact engine)
+    """
+
+    name = "beta-binomial"
+    engines = ("exact", "mcmc")
+
+    def __init__(
+        self,
+        *,
+        engine: str = "auto",
+        draws: int = 1000,
+        chains: int = 4,
+        tune: int = 1000,
+        target_accept: float = 0.9,
+        mu_prior: tuple[float, float] = (1.0, 1.0),
+        kappa_prior: tuple[float, float] = (20.0, 3.0),
+        random_seed: int | None = None,
+        progress: bool | None = None,
+    ) -> None:
+        super().__init__(engine=engine, draws=draws, chains=chains, random_seed=random_seed)
+        self.tune = tune
+        self.target_accept = target_accept
+        self.mu_prior = mu_prior
+        self.kappa_prior = kappa_prior
+        self.progress = progress
+
+    def _check_params(self) -> None:
+        super()._check_params()
+        if not isinstance(self.tune, int | np.integer) or self.tune < 0:
+            raise ParameterError(f"tune={self.tune!r} must be a whole number >= 0.")
+        if not (isinstance(self.target_accept, float | int) and 0.5 <= self.target_accept < 1):
+            raise ParameterError(
+                f"target_accept={self.target_accept!r} must be in [0.5, 1); 0.9 or 0.99 are usual."
+            )
+        try:
+            a, b = (float(x) for x in self.mu_prior)
+            med, sd = (float(x) for x in self.kappa_prior)
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(
+                f"mu_prior={self.mu_prior!r} and kappa_prior={self.kappa_prior!r} must each be"
+                " two numbers."
+            ) from exc
+        if not all(np.isfinite([a, b, med, sd])) or min(a, b, med, sd) <= 0:
+            raise ParameterError(
+                f"mu_prior={self.mu_prior!r} and kappa_prior={self.kappa_prior!r} need positive"
+                " finite numbers."
+            )
+
+    @property
+    def prior_(self) -> HyperPrior:
+        return HyperPrior(*map(float, self.mu_prior), *map(float, self.kappa_prior))
+
+    def _priors(self) -> dict:
+        return self.prior_.as_dict()
+
+    def _fit(self, data, engine, seed):
+        rng = np.random.default_rng(seed)
+        size = self.chains * self.draws
+        extra: dict = {}
+        stats_ = None
+        if engine == "exact":
+            grid = fit_grid(data.successes, data.trials, self.prior_)
+            self.grid_ = grid
+            self.exact_ = grid.mixture(data.successes, data.trials)
+            mu, kappa = grid.draw(size, rng)
+            mu = mu.reshape(self.chains, self.draws)
+            kappa = kappa.reshape(self.chains, self.draws)
+            extra = {
+                "log_marginal_likelihood": grid.log_marginal_likelihood,
+                "grid_points": int(grid.log_density.size),
+                "grid_edge_density": grid.edge_density,
+                "grid_refinement_change": grid.refinement_change,
+                "interval_method": "exact" if self.exact_.exact_quantiles else "draws",
+            }
+        else:
+            settings = SamplerSettings(
+                self.draws, self.tune, self.chains, float(self.target_accept), self.progress
+            )
+            mu, kappa, stats_ = sample_hyper(
+                data.successes, data.trials, self.prior_, settings, seed
+            )
+            self.exact_ = None
+            extra = {"tune": self.tune, "target_accept": float(self.target_accept),
+                     "sampler": "pymc-nuts, collapsed (mu, log kappa)"}
+        a = mu[..., None] * kappa[..., None]
+        b = (1 - mu[..., None]) * kappa[..., None]
+        y = data.successes[None, None, :]
+        n = data.trials[None, None, :]
+        theta = rng.beta(a + y, b + n - y)
+        theta_new = rng.beta(a[..., 0], b[..., 0])
+        sd = np.sqrt(mu * (1 - mu) / (kappa + 1))
+        hyper = {"mu": mu, "kappa": kappa, "between_group_sd": sd}
+        return theta, theta_new, hyper, extra, stats_
+
+    def _shrinkage(self) -> np.ndarray:
+        n = self.data_.trials.astype(float)
+        exact = getattr(self, "grid_", None) if self._engine_used == "exact" else None
+        if exact is not None:
+            _, kappa, w = exact.points()
+            out = np.empty(len(n))
+            uniq, inv = np.unique(n, return_inverse=True)
+            out = ((kappa[None, :] / (kappa[None, :] + uniq[:, None])) @ w)[inv.ravel()]
+            return out
+        kappa = self.idata_.posterior["kappa"].values.ravel()
+        uniq, inv = np.unique(n, return_inverse=True)
+        return (kappa[None, :] / (kappa[None, :] + uniq[:, None])).mean(axis=1)[inv.ravel()]
+
+
+MODELS: dict[str, type[_Estimator]] = {
+    cls.name: cls for cls in (BetaBinomial, NoPooling, CompletePooling)
+}
+
+
+def make_model(name: str, **settings) -> _Estimator:
+    """An unfitted estimator by its model name; settings it does not take are dropped."""
+    if name not in MODELS:
+        quoted = ", ".join(repr(m) for m in MODELS)
+        raise ParameterError(f"model={name!r} is not one of {quoted}.")
+    cls = MODELS[name]
+    import inspect
+
+    accepted = set()
+    for klass in cls.__mro__:
+        if "__init__" in vars(klass):
+            accepted |= set(inspect.signature(klass.__init__).parameters)
+    return cls(**{k: v for k, v in settings.items() if k in accepted and v is not None})
+
+
+
+

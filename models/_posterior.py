@@ -1,0 +1,169 @@
+"""The one posterior currency: build and read ArviZ InferenceData.
+
+Every model and engine returns an ``InferenceData`` with
+``posterior["theta"]`` (dims chain, draw, group), ``posterior["theta_new"]`` (the rate of a
+new, unseen group), the model's hyperparameters, ``observed_data["successes"]``,
+``constant_data["trials"]`` and ``attrs`` naming model, engine, priors, seed and versions.
+The per-group log-likelihood (``y`` conditional on theta, ``y_group`` with the group's rate
+integrated out) is added by :func:`add_log_likelihood`, in chunks, when it fits in memory.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from collections.abc import Mapping
+from importlib import metadata
+
+import numpy as np
+import xarray as xr
+from scipy import special
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+
+from ._data import GroupCounts
+
+#: Largest draws x groups array stored in memory for a log-likelihood (float64 cells).
+LOG_LIKELIHOOD_CELLS = 40_000_000
+
+
+def versions() -> dict[str, str]:
+    """Versions of this package and of the numerical libraries it stands on."""
+    out = {}
+    for name in ("workbench", "numpy", "scipy", "pandas", "pymc", "pytensor", "arviz"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def make_idata(
+    data: GroupCounts,
+    theta: np.ndarray,
+    *,
+    theta_new: np.ndarray,
+    hyper: Mapping[str, np.ndarray],
+    attrs: Mapping[str, object],
+    sample_stats: Mapping[str, np.ndarray] | None = None,
+) -> az.InferenceData:
+    """Assemble the posterior currency from arrays laid out as (chain, draw[, group])."""
+    if theta.ndim != 3 or theta.shape[2] != data.n_groups:
+        raise ValueError(f"theta must be (chain, draw, {data.n_groups}); got {theta.shape}")
+    chains, draws = theta.shape[:2]
+    coords = {
+        "chain": np.arange(chains),
+        "draw": np.arange(draws),
+        "group": data.names.astype(str),
+    }
+    post = {"theta": (("chain", "draw", "group"), theta)}
+    post["theta_new"] = (("chain", "draw"), theta_new.reshape(chains, draws))
+    for name, value in hyper.items():
+        post[name] = (("chain", "draw"), np.asarray(value, dtype=float).reshape(chains, draws))
+    posterior = xr.Dataset(post, coords=coords)
+    observed = xr.Dataset(
+        {"successes": (("group",), data.successes)}, coords={"group": coords["group"]}
+    )
+    constant = xr.Dataset({"trials": (("group",), data.trials)}, coords={"group": coords["group"]})
+    groups = {"posterior": posterior, "observed_data": observed, "constant_data": constant}
+    if sample_stats:
+        groups["sample_stats"] = xr.Dataset(
+            {k: (("chain", "draw"), np.asarray(v)) for k, v in sample_stats.items()},
+            coords={"chain": coords["chain"], "draw": coords["draw"]},
+        )
+    idata = az.InferenceData(**groups)
+    flat = {k: _attr_value(v) for k, v in attrs.items()}
+    flat["versions"] = json.dumps(versions())
+    flat["data_fingerprint"] = data.fingerprint()
+    for group in idata.groups():
+        idata[group].attrs.update(flat)
+    return idata
+
+
+def _attr_value(v: object) -> object:
+    # netCDF attributes hold numbers and strings only
+    if isinstance(v, bool | np.bool_):
+        return int(v)
+    if isinstance(v, dict | list | tuple):
+        return json.dumps(v)
+    if v is None:
+        return ""
+    return v
+
+
+def counts_of(idata: az.InferenceData) -> GroupCounts:
+    """The GroupCounts a posterior was fitted to."""
+    names = idata.posterior["group"].values
+    return GroupCounts(
+        names,
+        idata.observed_data["successes"].values,
+        idata.constant_data["trials"].values,
+    )
+
+
+def attr(idata: az.InferenceData, key: str, default: object = None) -> object:
+    """One attribute of the posterior, JSON-decoded when it was stored as JSON."""
+    value = idata.posterior.attrs.get(key, default)
+    if isinstance(value, str) and value[:1] in "[{":
+        try:
+            return json.loads(value)
+        except json.JSONDecodeError:
+            return value
+    return value
+
+
+def theta_draws(idata: az.InferenceData) -> np.ndarray:
+    """theta as a (samples, groups) float array, chains stacked."""
+    th = idata.posterior["theta"].transpose("chain", "draw", "group").values
+    return th.reshape(-1, th.shape[-1])
+
+
+def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
+    """Conditional (``y``) and group-integrated (``y_group``) log-likelihood, (chain, draw, group).
+
+    ``y`` is log Binomial(successes | trials, theta_j). ``y_group`` integrates theta_j out
+    given the hyperparameters: Beta-binomial given (mu, kappa) for the beta-binomial model,
+    the prior predictive Beta-binomial(a, b) for no pooling (whose left-out group learns
+    nothing from the others), and the Binomial given the shared rate for complete pooling.
+    """
+    data = counts_of(idata)
+    y = data.successes.astype(float)
+    n = data.trials.astype(float)
+    th = idata.posterior["theta"].transpose("chain", "draw", "group").values
+    log_choose = special.gammaln(n + 1) - special.gammaln(y + 1) - special.gammaln(n - y + 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cond = log_choose + special.xlogy(y, th) + special.xlog1py(n - y, -th)
+    model = attr(idata, "model")
+    if model == "beta-binomial":
+        mu = idata.posterior["mu"].values[..., None]
+        kappa = idata.posterior["kappa"].values[..., None]
+        a = mu * kappa
+        b = (1 - mu) * kappa
+        integrated = log_choose + special.betaln(y + a, n - y + b) - special.betaln(a, b)
+    elif model == "no-pooling":
+        prior = attr(idata, "priors")
+        a, b = prior["a"], prior["b"]
+        one = log_choose + special.betaln(y + a, n - y + b) - special.betaln(a, b)
+        integrated = np.broadcast_to(one, th.shape).copy()
+    else:
+        integrated = cond.copy()
+    return {"y": cond, "y_group": integrated}
+
+
+def add_log_likelihood(idata: az.InferenceData, *, force: bool = False) -> bool:
+    """Add the ``log_likelihood`` group when it fits in memory (or ``force``); say if added."""
+    if "log_likelihood" in idata.groups():
+        return True
+    th = idata.posterior["theta"]
+    if not force and th.size > LOG_LIKELIHOOD_CELLS:
+        return False
+    arrays = log_likelihood_arrays(idata)
+    ds = xr.Dataset(
+        {k: (("chain", "draw", "group"), v) for k, v in arrays.items()},
+        coords={c: th[c].values for c in ("chain", "draw", "group")},
+    )
+    idata.add_groups({"log_likelihood": ds})
+    idata.log_likelihood.attrs.update(idata.posterior.attrs)
+    return True

@@ -1,0 +1,391 @@
+"""The public API: everything the CLI does, callable from Python.
+
+>>> from workbench import api
+>>> run = api.fit(api.demo_data_path(), seed=1)          # doctest: +SKIP
+>>> api.write_run(run, "demo-run")                          # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+import warnings
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from models import (
+    MODELS,
+    SUMMARY_COLUMNS,
+    ConvergenceWarning,
+    DataError,
+    ParameterError,
+    attr,
+    make_model,
+    versions,
+)
+
+from . import _io
+from .data import LoadedData, load_groups
+from .diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+
+DEFAULT_MODEL = "beta-binomial"
+ESTIMATE_FILE = "estimates.csv"
+POSTERIOR_FILE = "posterior.nc"
+RUN_FILE = "run.json"
+DIAGNOSTICS_FILE = "diagnostics.json"
+POPULATION_FILE = "population.csv"
+
+
+def demo_data_path() -> Path:
+    """The bundled demo CSV (installed with the package, or beside it in a checkout)."""
+    here = Path(__file__).resolve().parent
+    for candidate in (here / "_datasets", here.parent / "datasets"):
+        if (candidate / "branch_signups.csv").exists():
+            return candidate / "branch_signups.csv"
+    with resources.as_file(resources.files("workbench") / "_datasets" / "branch_signups.csv") as p:
+        return Path(p)
+
+
+@dataclass
+class Run:
+    """A fitted run: the data, the model, and every table computed from its posterior."""
+
+    loaded: LoadedData
+    model: object
+    settings: dict
+    estimates: pd.DataFrame
+    population: pd.DataFrame
+    diagnostics: Diagnostics
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    documents: dict[str, dict] = field(default_factory=dict)
+    messages: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+    @property
+    def idata(self):
+        return self.model.idata_
+
+    @property
+    def ready(self) -> bool:
+        return self.diagnostics.ready
+
+    def record(self) -> dict:
+        """The content of run.json."""
+        return {
+            "workbench_run": 1,
+            "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+            "final": self.ready,
+            "verdict": self.diagnostics.verdict,
+            "command": " ".join(sys.argv) if sys.argv and sys.argv[0].endswith("workbench") else None,
+            "settings": self.settings,
+            "model": attr(self.idata, "model"),
+            "engine": attr(self.idata, "engine"),
+            "priors": attr(self.idata, "priors"),
+            "random_seed": int(attr(self.idata, "random_seed")),
+            "versions": versions(),
+            "input": {
+                "fingerprint": self.loaded.counts.fingerprint(),
+                **self.loaded.reconciliation,
+            },
+            "notes": self.loaded.notes + self.messages,
+            "population": self.population.to_dict(orient="records"),
+            "fit_seconds": round(self.seconds, 3),
+            **{k: v for k, v in self.documents.items() if k in ("verification", "retry")},
+        }
+
+
+SAMPLER_KEYS = ("engine", "draws", "chains", "tune", "target_accept")
+
+
+def fit(
+    source,
+    *,
+    group: str = "group",
+    successes: str = "successes",
+    trials: str = "trials",
+    outcome: str | None = None,
+    model: str = DEFAULT_MODEL,
+    engine: str = "auto",
+    level: float = 0.95,
+    target: float | None = None,
+    seed: int | None = None,
+    draws: int = 1000,
+    chains: int = 4,
+    tune: int = 1000,
+    target_accept: float = 0.9,
+    beta_prior: tuple[float, float] = (1.0, 1.0),
+    mu_prior: tuple[float, float] = (1.0, 1.0),
+    kappa_prior: tuple[float, float] = (20.0, 3.0),
+    verify: bool = False,
+    retry: bool = False,
+    thresholds: Thresholds | None = None,
+    progress: bool | None = None,
+) -> Run:
+    """Load, fit, summarise and diagnose: one run, not yet written anywhere."""
+    loaded = source if isinstance(source, LoadedData) else load_groups(
+        source, group=group, successes=successes, trials=trials, outcome=outcome
+    )
+    if model not in MODELS:
+        quoted = ", ".join(repr(m) for m in MODELS)
+        raise ParameterError(f"model={model!r} is not one of {quoted}.")
+    settings = {
+        "model": model,
+        "engine": engine,
+        "level": level,
+        "target": target,
+        "seed": seed,
+        "draws": draws,
+        "chains": chains,
+        "tune": tune,
+        "target_accept": target_accept,
+        "beta_prior": list(beta_prior),
+        "mu_prior": list(mu_prior),
+        "kappa_prior": list(kappa_prior),
+        "verify": verify,
+        "retry": retry,
+    }
+    started = time.perf_counter()
+    estimator = _fit_model(loaded, settings, progress)
+    diagnostics = diagnose(estimator.idata_, thresholds)
+    documents: dict = {}
+    messages: list[str] = []
+    if not diagnostics.ready and retry:
+        change = first_remedy_settings(diagnostics, settings)
+        if change is not None:
+            settings, said = change
+            messages.append(f"not ready at first: {said}.")
+            documents["retry"] = {"applied": said, "first_reasons": diagnostics.reasons}
+            estimator = _fit_model(loaded, settings, progress)
+            diagnostics = diagnose(estimator.idata_, thresholds)
+    estimates = estimator.summary(level, target=target)
+    population = estimator.population(level)
+    run = Run(loaded, estimator, settings, estimates, population, diagnostics,
+              documents=documents, messages=messages)
+    if verify:
+        run.documents["verification"] = verify_run(run, progress=progress)
+    run.seconds = time.perf_counter() - started
+    if not diagnostics.ready:
+        warnings.warn(
+            "convergence diagnostics failed; the results are not final: "
+            + "; ".join(r["text"] for r in diagnostics.reasons[:3]),
+            ConvergenceWarning,
+            stacklevel=2,
+        )
+    return run
+
+
+def _fit_model(loaded: LoadedData, settings: dict, progress: bool | None):
+    a, b = settings["beta_prior"]
+    estimator = make_model(
+        settings["model"],
+        engine=settings["engine"],
+        draws=int(settings["draws"]),
+        chains=int(settings["chains"]),
+        tune=int(settings["tune"]),
+        target_accept=float(settings["target_accept"]),
+        random_seed=settings["seed"],
+        a=float(a),
+        b=float(b),
+        mu_prior=tuple(settings["mu_prior"]),
+        kappa_prior=tuple(settings["kappa_prior"]),
+        progress=progress,
+    )
+    return estimator.fit(loaded.counts)
+
+
+def verify_run(run: Run, *, progress: bool | None = None) -> dict:
+    """Self-check: fit the other engine (or compare draws with closed forms) and measure agreement.
+
+    Agreement of posterior means is in units of the Monte Carlo standard error of the
+    sampled side; interval endpoints are compared as differences.
+    """
+    fitted = run.model
+    model_cls = MODELS[attr(fitted.idata_, "model")]
+    used = attr(fitted.idata_, "engine")
+    others = [e for e in model_cls.engines if e != used]
+    level = run.settings["level"]
+    if others:
+        other_settings = dict(run.settings, engine=others[0])
+        if other_settings["seed"] is not None:
+            other_settings["seed"] = int(other_settings["seed"]) + 1
+        other = _fit_model(run.loaded, other_settings, progress)
+        exact, sampled = (fitted, other) if used == "exact" else (other, fitted)
+        what = f"{used} engine against the {others[0]} engine"
+    else:
+        exact, sampled = fitted, fitted
+        what = "closed-form posterior against the engine's own draws"
+    truth = exact.summary(level)
+    mc = sampled.summary(level) if sampled is not exact else None
+    theta = sampled.idata_.posterior["theta"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        mcse = az.mcse(sampled.idata_.posterior[["theta"]], method="mean")["theta"].values
+    draws = theta.stack(sample=("chain", "draw")).values
+    mean_mc = draws.mean(axis=1)
+    lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
+    lower_mc, upper_mc = np.quantile(draws, [lo_q, hi_q], axis=1)
+    if mc is not None:
+        lower_mc, upper_mc = mc["lower"].to_numpy(), mc["upper"].to_numpy()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (mean_mc - truth["posterior_mean"].to_numpy()) / mcse
+    z = np.where(np.isfinite(z), z, 0.0)
+    table = pd.DataFrame(
+        {
+            "group": truth["group"],
+            "mean_reference": truth["posterior_mean"],
+            "mean_sampled": mean_mc,
+            "mcse": mcse,
+            "z": z,
+            "lower_difference": lower_mc - truth["lower"].to_numpy(),
+            "upper_difference": upper_mc - truth["upper"].to_numpy(),
+        }
+    )
+    run.tables["verification"] = table
+    within = float(np.mean(np.abs(z) <= 4))
+    return {
+        "what": what,
+        "groups": int(len(table)),
+        "share_within_4_mcse": within,
+        "max_abs_z": float(np.max(np.abs(z))),
+        "max_abs_interval_difference": float(
+            np.max(np.abs(table[["lower_difference", "upper_difference"]].to_numpy()))
+        ),
+        "agree": within >= 0.99,
+    }
+
+
+def estimates_table(run: Run) -> pd.DataFrame:
+    """estimates.csv: the summary columns, then any extra per-group columns of later tables."""
+    table = run.estimates.copy()
+    for extra in run.tables.get("estimate_columns", []):
+        table = table.merge(extra, on="group", how="left")
+    return table
+
+
+def write_run(run: Run, out: str | Path) -> Path:
+    """Write the run folder atomically; returns its path."""
+    out = Path(out)
+    record = run.record()
+    diag = run.diagnostics.to_dict()
+    files = dict(run.documents.get("_files", {}))
+
+    def fill(folder: Path) -> None:
+        _io.write_csv(folder / ESTIMATE_FILE, estimates_table(run))
+        _io.write_csv(folder / POPULATION_FILE, run.population)
+        _io.write_json(folder / DIAGNOSTICS_FILE, diag)
+        for name, table in run.tables.items():
+            if isinstance(table, pd.DataFrame):
+                _io.write_csv(folder / f"{name}.csv", table)
+        for name, writer in files.items():
+            writer(folder / name)
+        run.idata.to_netcdf(str(folder / POSTERIOR_FILE), engine="h5netcdf")
+        record["files"] = sorted(p.name for p in folder.iterdir()) + [RUN_FILE]
+        _io.write_json(folder / RUN_FILE, record)
+
+    _io.replace_folder(out, fill)
+    return out
+
+
+@dataclass
+class RunFolder:
+    """A run folder read back: its posterior, record and estimates."""
+
+    path: Path
+    idata: object
+    record: dict
+    estimates: pd.DataFrame
+
+    @property
+    def final(self) -> bool:
+        return bool(self.record.get("final"))
+
+
+def open_run(path: str | Path) -> RunFolder:
+    """Read a run folder written by :func:`write_run`."""
+    import json
+
+    path = Path(path)
+    if not (path / RUN_FILE).exists() or not (path / POSTERIOR_FILE).exists():
+        raise DataError(
+            f"{str(path)!r} is not a run folder (no {RUN_FILE} or {POSTERIOR_FILE});"
+            " give a folder written by 'workbench fit'."
+        )
+    record = json.loads((path / RUN_FILE).read_text(encoding="utf-8"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        idata = az.from_netcdf(str(path / POSTERIOR_FILE), engine="h5netcdf")
+    idata.load() if hasattr(idata, "load") else None
+    estimates = pd.read_csv(path / ESTIMATE_FILE, dtype={"group": str}, keep_default_na=False,
+                            na_values=[""])
+    return RunFolder(path, idata, record, estimates)
+
+
+def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
+    """The terminal summary of a fit: what was fitted, population, extremes, verdict."""
+    from .diagnostics import format_diagnostics
+
+    rec = run.loaded.reconciliation
+    idata = run.idata
+    lines = [
+        f"data: {rec['rows_read']} rows read, {rec['rows_used']} used, {rec['groups']} groups"
+        f" ({rec['total_successes']} successes in {rec['total_trials']} trials)",
+    ]
+    lines += [f"  note: {n}" for n in run.loaded.notes + run.messages]
+    lines.append(
+        f"model: {attr(idata, 'model')}, engine {attr(idata, 'engine')},"
+        f" {idata.posterior.sizes['chain']} x {idata.posterior.sizes['draw']} draws,"
+        f" {run.seconds:.1f} s"
+    )
+    level = run.settings["level"]
+    for row in run.population.itertuples():
+        lines.append(
+            f"  {row.quantity:<18} {row.mean:10.4g}   {level:.0%} interval"
+            f" [{row.lower:.4g}, {row.upper:.4g}]"
+        )
+    if "kappa" in idata.posterior and float(idata.posterior["kappa"].median()) > 1e6:
+        lines.append("  no detectable between-group spread: the groups look alike.")
+    est = run.estimates.sort_values("posterior_mean", ascending=False)
+    show = est if len(est) <= 2 * rows else pd.concat([est.head(rows), est.tail(rows)])
+    lines.append(f"groups by posterior mean ({'all' if len(est) <= 2 * rows else 'top and bottom'}):")
+    width = min(max(len(str(g)) for g in show["group"]), 28)
+    for r in show.itertuples():
+        observed = "   -  " if np.isnan(r.observed_rate) else f"{r.observed_rate:6.3f}"
+        lines.append(
+            f"  {str(r.group)[:width]:<{width}}  {r.successes:>7}/{r.trials:<7}  observed"
+            f" {observed}  estimate {r.posterior_mean:6.3f} [{r.lower:.3f}, {r.upper:.3f}]"
+        )
+    lines.append(format_diagnostics(run.diagnostics))
+    ver = run.documents.get("verification")
+    if ver:
+        lines.append(
+            f"verify: {ver['what']}: {ver['share_within_4_mcse']:.1%} of groups within 4 MCSE"
+            f" (max |z| {ver['max_abs_z']:.2f}; largest interval-end difference"
+            f" {ver['max_abs_interval_difference']:.2g}) -> {'AGREE' if ver['agree'] else 'DISAGREE'}"
+        )
+    if out is not None:
+        lines.append(f"wrote {out}/ ({'final' if run.ready else 'NOT FINAL: diagnostics failed'})")
+    return "\n".join(lines)
+
+
+__all__ = [
+    "DEFAULT_MODEL",
+    "Run",
+    "RunFolder",
+    "SUMMARY_COLUMNS",
+    "demo_data_path",
+    "estimates_table",
+    "fit",
+    "format_fit",
+    "load_groups",
+    "open_run",
+    "verify_run",
+    "write_run",
+]

@@ -1,0 +1,214 @@
+"""Read group counts from files and tables; reconcile every row; report problems by row.
+
+Accepted sources: a CSV (``.csv``, ``.tsv``, ``.txt``), a Parquet file, or a pandas
+DataFrame. Two layouts: aggregated rows (group, successes, trials) or one row per trial
+(group, outcome) with outcomes 1/0, true/false, yes/no, y/n, t/f, success/failure.
+Rows naming the same group are summed and the run record says how many. No row is ever
+dropped: a row that cannot be used stops the run with a message naming it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from models import DataError, GroupCounts
+from models.exceptions import join_problems
+
+TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
+FALSE_WORDS = {"0", "false", "f", "no", "n", "failure", "0.0"}
+CSV_SUFFIXES = {".csv", ".txt", ".tsv"}
+PARQUET_SUFFIXES = {".parquet", ".pq"}
+
+
+@dataclass
+class LoadedData:
+    """Validated counts and the reconciliation of the rows they came from."""
+
+    counts: GroupCounts
+    reconciliation: dict = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+
+
+def read_table(source: str | Path | pd.DataFrame) -> tuple[pd.DataFrame, str]:
+    """The raw table (CSV read as text, so values are checked as written) and its name."""
+    if isinstance(source, pd.DataFrame):
+        return source.reset_index(drop=True), "<DataFrame>"
+    path = Path(source)
+    name = str(path)
+    if not path.exists():
+        raise DataError(f"cannot read {name!r}: no such file; check the path.")
+    if path.is_dir():
+        raise DataError(f"cannot read {name!r}: it is a folder; give a CSV or Parquet file.")
+    suffix = path.suffix.lower()
+    if path.stat().st_size == 0:
+        raise DataError(f"{name!r} is empty; it needs a header row and at least one data row.")
+    try:
+        if suffix in PARQUET_SUFFIXES:
+            table = pd.read_parquet(path)
+        elif suffix in CSV_SUFFIXES or suffix == "":
+            table = pd.read_csv(
+                path,
+                sep="\t" if suffix == ".tsv" else ",",
+                dtype=str,
+                keep_default_na=False,
+                skipinitialspace=True,
+                encoding="utf-8-sig",
+            )
+        else:
+            raise DataError(
+                f"cannot read {name!r}: unknown file type {suffix!r}; use .csv, .tsv or .parquet."
+            )
+    except DataError:
+        raise
+    except pd.errors.EmptyDataError as exc:
+        raise DataError(f"{name!r} is empty; it needs a header row and at least one data row.") from exc
+    except UnicodeDecodeError as exc:
+        raise DataError(f"cannot read {name!r}: it is not UTF-8 text; save it as UTF-8 CSV.") from exc
+    except Exception as exc:  # noqa: BLE001 - any reader failure becomes a one-line DataError
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise DataError(f"cannot read {name!r}: {first}; check that it is a valid {suffix or 'CSV'} file.") from exc
+    table.columns = [str(c).strip() for c in table.columns]
+    return table, name
+
+
+def _require_columns(table: pd.DataFrame, wanted: dict[str, str], name: str) -> None:
+    found = list(table.columns)
+    for option, column in wanted.items():
+        if column not in table.columns:
+            raise DataError(
+                f"no column {column!r} in {name}; found {found}. Pass {option}=COLUMN naming it."
+            )
+
+
+def _row_label(i: int) -> str:
+    # i is the 0-based data row; files count a header line first
+    return f"row {i + 1} (line {i + 2})"
+
+
+def _parse_counts(values: pd.Series, column: str, groups: pd.Series, problems: list[str]):
+    """Whole numbers >= 0 from a column, collecting one problem per bad row."""
+    out = np.zeros(len(values), dtype=np.int64)
+    raw = values.to_numpy(dtype=object)
+    for i, v in enumerate(raw):
+        text = str(v).strip() if v is not None else ""
+        try:
+            number = float(text) if isinstance(v, str) or v is None else float(v)
+        except (TypeError, ValueError):
+            number = None
+        where = f"{_row_label(i)} (group {str(groups.iloc[i])!r})"
+        if number is None or text == "" or (isinstance(v, float) and np.isnan(v)):
+            problems.append(
+                f"{where}: column {column!r} has {text or 'a blank'!r} where a whole number is"
+                " needed; fill in the count"
+            )
+        elif not np.isfinite(number):
+            problems.append(f"{where}: column {column!r} is {text!r}; counts must be finite")
+        elif number != round(number):
+            problems.append(
+                f"{where}: column {column!r} is {text!r}, not a whole number; counts are integers"
+            )
+        elif number < 0:
+            problems.append(f"{where}: column {column!r} is {text!r}; counts must be >= 0")
+        else:
+            out[i] = int(round(number))
+    return out
+
+
+def _parse_outcomes(values: pd.Series, column: str, groups: pd.Series, problems: list[str]):
+    out = np.zeros(len(values), dtype=np.int64)
+    for i, v in enumerate(values.to_numpy(dtype=object)):
+        if isinstance(v, bool | np.bool_):
+            out[i] = int(v)
+            continue
+        text = str(v).strip().lower() if v is not None else ""
+        if text in TRUE_WORDS:
+            out[i] = 1
+        elif text in FALSE_WORDS:
+            out[i] = 0
+        else:
+            problems.append(
+                f"{_row_label(i)} (group {str(groups.iloc[i])!r}): column {column!r} has"
+                f" {str(v)!r}; outcomes must be 1/0, true/false or yes/no"
+            )
+    return out
+
+
+def load_groups(
+    source: str | Path | pd.DataFrame,
+    *,
+    group: str = "group",
+    successes: str = "successes",
+    trials: str = "trials",
+    outcome: str | None = None,
+) -> LoadedData:
+    """Read, validate and aggregate a table into :class:`models.GroupCounts`.
+
+    Raises
+    ------
+    DataError
+        One line naming the row(s), group, column, value and the fix; up to five problems.
+    """
+    table, name = read_table(source)
+    if outcome is not None:
+        _require_columns(table, {"group": group, "outcome": outcome}, name)
+    else:
+        _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
+    if len(table) == 0:
+        raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
+    labels = table[group].map(lambda v: "" if v is None or (isinstance(v, float) and np.isnan(v)) else str(v))
+    problems: list[str] = []
+    for i in np.flatnonzero(labels.str.strip().eq("").to_numpy()):
+        problems.append(f"{_row_label(i)}: column {group!r} is blank; every row needs a group label")
+    if outcome is not None:
+        y = _parse_outcomes(table[outcome], outcome, labels, problems)
+        n = np.ones(len(table), dtype=np.int64)
+    else:
+        y = _parse_counts(table[successes], successes, labels, problems)
+        n = _parse_counts(table[trials], trials, labels, problems)
+        for i in np.flatnonzero(y > n):
+            if not any(p.startswith(_row_label(i) + " ") for p in problems):
+                problems.append(
+                    f"{_row_label(i)} (group {labels.iloc[i]!r}): {successes}={y[i]} exceeds"
+                    f" {trials}={n[i]}; each row needs 0 <= {successes} <= {trials}"
+                )
+    if problems:
+        problems.sort(key=lambda p: int(p.split()[1]) if p.startswith("row ") else 0)
+        raise DataError(join_problems(problems) + ".")
+
+    frame = pd.DataFrame({"group": labels.to_numpy(), "successes": y, "trials": n})
+    summed = frame.groupby("group", sort=False).agg(
+        successes=("successes", "sum"), trials=("trials", "sum"), rows=("successes", "size")
+    )
+    counts = GroupCounts(summed.index.to_numpy(), summed["successes"], summed["trials"])
+    repeated = int((summed["rows"] > 1).sum())
+    zero = summed.index[summed["trials"].to_numpy() == 0].astype(str).tolist()
+    notes = []
+    if outcome is not None:
+        notes.append(f"{len(table)} trial rows were counted into {counts.n_groups} groups.")
+    elif repeated:
+        notes.append(f"{repeated} groups appeared on more than one row; their rows were summed.")
+    if zero:
+        shown = ", ".join(repr(z) for z in zero[:5]) + (" ..." if len(zero) > 5 else "")
+        notes.append(
+            f"{len(zero)} group(s) have zero trials ({shown}); they are kept and their estimate"
+            " is the model's view of an unseen group."
+        )
+    reconciliation = {
+        "source": name,
+        "layout": "one row per trial" if outcome is not None else "aggregated counts",
+        "columns": {"group": group, **({"outcome": outcome} if outcome else
+                                       {"successes": successes, "trials": trials})},
+        "rows_read": int(len(table)),
+        "rows_used": int(len(table)),
+        "rows_dropped": 0,
+        "groups": counts.n_groups,
+        "groups_on_several_rows": repeated,
+        "zero_trial_groups": zero,
+        "total_successes": int(counts.successes.sum()),
+        "total_trials": int(counts.trials.sum()),
+    }
+    return LoadedData(counts, reconciliation, notes)

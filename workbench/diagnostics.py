@@ -1,0 +1,269 @@
+"""Convergence diagnostics and the verdict: nothing is final while it says ``not-ready``.
+
+R-hat (rank-normalised split), bulk and tail ESS and MCSE come from ArviZ, computed once
+over whole arrays. Per run: divergences, tree-depth hits and E-BFMI per chain. The exact
+engines draw independently, so their chains mix by construction; their own checks (grid edge
+density and refinement change) take the sampler checks' place in the verdict.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from models import attr
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+
+READY = "ready"
+NOT_READY = "not-ready"
+HYPER = ("mu", "kappa")
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Pass marks. Defaults: R-hat < 1.01, bulk and tail ESS >= 400, no divergences,
+    E-BFMI >= 0.3, at most 1% of draws at the maximum tree depth (common practice)."""
+
+    rhat: float = 1.01
+    ess_bulk: float = 400.0
+    ess_tail: float = 400.0
+    divergences: int = 0
+    ebfmi: float = 0.3
+    treedepth_share: float = 0.01
+    grid_edge_density: float = 1e-8
+    grid_refinement_change: float = 1e-6
+
+
+@dataclass
+class Diagnostics:
+    """Per-quantity table, per-run figures and the verdict."""
+
+    table: pd.DataFrame
+    run: dict
+    verdict: str
+    reasons: list[dict] = field(default_factory=list)
+    remedies: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    thresholds: Thresholds = field(default_factory=Thresholds)
+
+    @property
+    def ready(self) -> bool:
+        return self.verdict == READY
+
+    def to_dict(self) -> dict:
+        worst = self.table.sort_values("r_hat", ascending=False).head(20)
+        return {
+            "verdict": self.verdict,
+            "final": self.ready,
+            "reasons": self.reasons,
+            "remedies": self.remedies,
+            "notes": self.notes,
+            "thresholds": asdict(self.thresholds),
+            "run": self.run,
+            "summary": {
+                "quantities": int(len(self.table)),
+                "max_r_hat": _num(self.table["r_hat"].max()),
+                "min_ess_bulk": _num(self.table["ess_bulk"].min()),
+                "min_ess_tail": _num(self.table["ess_tail"].min()),
+            },
+            "worst_quantities": worst.replace({np.nan: None}).to_dict(orient="records"),
+        }
+
+
+def _num(x) -> float | None:
+    x = float(x)
+    return None if not np.isfinite(x) else x
+
+
+def _quantity_table(idata) -> pd.DataFrame:
+    post = idata.posterior
+    names = [v for v in ("theta", *HYPER) if v in post]
+    ds = post[names]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # constant quantities give NaN R-hat, reported as such
+        rhat = az.rhat(ds, method="rank")
+        bulk = az.ess(ds, method="bulk")
+        tail = az.ess(ds, method="tail")
+        mcse_mean = az.mcse(ds, method="mean")
+        mcse_lo = az.mcse(ds, method="quantile", prob=0.025)
+        mcse_hi = az.mcse(ds, method="quantile", prob=0.975)
+    frames = []
+    for name in names:
+        if name == "theta":
+            labels = [f"theta[{g}]" for g in post["group"].values.astype(str)]
+        else:
+            labels = [name]
+        frames.append(
+            pd.DataFrame(
+                {
+                    "quantity": labels,
+                    "r_hat": np.atleast_1d(rhat[name].values),
+                    "ess_bulk": np.atleast_1d(bulk[name].values),
+                    "ess_tail": np.atleast_1d(tail[name].values),
+                    "mcse_mean": np.atleast_1d(mcse_mean[name].values),
+                    "mcse_lower": np.atleast_1d(mcse_lo[name].values),
+                    "mcse_upper": np.atleast_1d(mcse_hi[name].values),
+                }
+            )
+        )
+    return pd.concat(frames, ignore_index=True)
+
+
+def _run_figures(idata) -> dict:
+    out: dict = {"engine": attr(idata, "engine"), "independent_draws": bool(attr(idata, "independent_draws", 0))}
+    post = idata.posterior
+    out["chains"] = int(post.sizes["chain"])
+    out["draws_per_chain"] = int(post.sizes["draw"])
+    if "sample_stats" not in idata.groups():
+        return out
+    ss = idata.sample_stats
+    if "diverging" in ss:
+        out["divergences"] = int(ss["diverging"].values.sum())
+    depth_hit = None
+    for name in ("reached_max_treedepth", "maxdepth_reached"):
+        if name in ss:
+            depth_hit = ss[name].values
+    if depth_hit is not None:
+        out["treedepth_hits"] = int(depth_hit.sum())
+        out["treedepth_share"] = float(depth_hit.mean())
+    if "energy" in ss:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            out["ebfmi"] = [float(x) for x in np.atleast_1d(az.bfmi(idata))]
+    return out
+
+
+def diagnose(idata, thresholds: Thresholds | None = None) -> Diagnostics:
+    """Diagnostics for every theta_j and hyperparameter, and the verdict."""
+    th = thresholds or Thresholds()
+    table = _quantity_table(idata)
+    run = _run_figures(idata)
+    exact = run["independent_draws"]
+    reasons: list[dict] = []
+    notes: list[str] = []
+
+    def fail(quantity, check, value, limit, direction):
+        by = value - limit if direction == "above" else limit - value
+        reasons.append(
+            {
+                "quantity": quantity,
+                "check": check,
+                "value": _num(value),
+                "threshold": limit,
+                "by": _num(by),
+                "text": f"{quantity}: {check} = {value:.4g} is {direction} the limit {limit:g}",
+            }
+        )
+
+    per_quantity = [
+        ("r_hat", "R-hat", th.rhat, "above", lambda s: s >= th.rhat),
+        ("ess_bulk", "bulk ESS", th.ess_bulk, "below", lambda s: s < th.ess_bulk),
+        ("ess_tail", "tail ESS", th.ess_tail, "below", lambda s: s < th.ess_tail),
+    ]
+    sampler_reasons: list[dict] = []
+    for column, label, limit, direction, bad in per_quantity:
+        values = table[column]
+        failing = table[bad(values.fillna(limit if direction == "below" else 0))]
+        if failing.empty:
+            continue
+        worst = failing.sort_values(column, ascending=(direction == "below")).iloc[0]
+        before = len(reasons)
+        fail(worst["quantity"], label, float(worst[column]), limit, direction)
+        if len(failing) > 1:
+            reasons[-1]["text"] += f" (and {len(failing) - 1} more quantities fail it)"
+            reasons[-1]["failing"] = int(len(failing))
+        sampler_reasons.extend(reasons[before:])
+    if run.get("divergences", 0) > th.divergences:
+        fail("sampler", "divergences", run["divergences"], th.divergences, "above")
+    if run.get("treedepth_share", 0.0) > th.treedepth_share:
+        fail("sampler", "share of draws at maximum tree depth", run["treedepth_share"],
+             th.treedepth_share, "above")
+    for chain, value in enumerate(run.get("ebfmi", [])):
+        if value < th.ebfmi:
+            fail(f"chain {chain}", "E-BFMI", value, th.ebfmi, "below")
+
+    if exact:
+        notes.append(
+            "The exact engine draws independently from the posterior: its chains mix by"
+            " construction, so R-hat and ESS pass by design; they are reported for the record."
+        )
+        # independent draws: an R-hat/ESS miss is chance, not non-convergence
+        for r in sampler_reasons:
+            reasons.remove(r)
+            notes.append("by chance on independent draws: " + r["text"])
+        edge = attr(idata, "grid_edge_density")
+        change = attr(idata, "grid_refinement_change")
+        if edge is not None and float(edge) > th.grid_edge_density:
+            fail("grid", "density at the grid edge", float(edge), th.grid_edge_density, "above")
+        if change is not None and float(change) > th.grid_refinement_change:
+            fail("grid", "change of posterior means under refinement", float(change),
+                 th.grid_refinement_change, "above")
+    verdict = READY if not reasons else NOT_READY
+    return Diagnostics(table, run, verdict, reasons, remedies_for(reasons, idata), notes, th)
+
+
+def remedies_for(reasons: list[dict], idata) -> list[str]:
+    """Plain-words remedies, the one to try first first."""
+    checks = {r["check"] for r in reasons}
+    out: list[str] = []
+    model = attr(idata, "model")
+    if checks & {"divergences"}:
+        out.append("raise the target acceptance (--target-accept 0.99) so NUTS takes smaller steps")
+    if checks & {"R-hat", "bulk ESS", "tail ESS", "E-BFMI"}:
+        draws = int(idata.posterior.sizes["draw"])
+        tune = int(attr(idata, "tune", draws) or draws)
+        out.append(
+            f"run longer: more tuning and more draws (--tune {max(2 * tune, 1000)}"
+            f" --draws {max(2 * draws, 1000)})"
+        )
+    if "share of draws at maximum tree depth" in checks:
+        out.append("more tuning (--tune 2000); the posterior may be nearly flat in one direction")
+    if model == "beta-binomial" and attr(idata, "engine") == "mcmc" and out:
+        out.append("use the exact engine, which this model has (--engine exact)")
+    if checks & {"density at the grid edge", "change of posterior means under refinement"}:
+        out.append("the grid could not be made fine or wide enough; cross-check with --engine mcmc")
+    return out
+
+
+def first_remedy_settings(diagnostics: Diagnostics, settings: dict) -> tuple[dict, str] | None:
+    """New sampler settings applying the first remedy once, with a sentence saying so."""
+    if not diagnostics.remedies:
+        return None
+    first = diagnostics.remedies[0]
+    new = dict(settings)
+    if first.startswith("raise the target acceptance"):
+        new["target_accept"] = 0.99
+        return new, "retried with --target-accept 0.99"
+    if first.startswith("run longer") or first.startswith("more tuning"):
+        new["tune"] = max(2 * int(settings.get("tune") or 1000), 1000)
+        new["draws"] = max(2 * int(settings.get("draws") or 1000), 1000)
+        return new, f"retried with --tune {new['tune']} --draws {new['draws']}"
+    if first.startswith("use the exact engine"):
+        new["engine"] = "exact"
+        return new, "retried with --engine exact"
+    return None
+
+
+def format_diagnostics(d: Diagnostics) -> str:
+    """Ten-second terminal summary."""
+    s = d.to_dict()["summary"]
+    lines = [
+        f"convergence: {d.verdict.upper()}  (max R-hat {s['max_r_hat'] or float('nan'):.4f},"
+        f" min bulk ESS {s['min_ess_bulk'] or float('nan'):.0f},"
+        f" min tail ESS {s['min_ess_tail'] or float('nan'):.0f}"
+        + (f", divergences {d.run['divergences']}" if "divergences" in d.run else "")
+        + ")"
+    ]
+    for r in d.reasons[:5]:
+        lines.append(f"  - {r['text']}")
+    if d.remedies:
+        lines.append(f"  remedy: {d.remedies[0]}")
+    if d.run.get("independent_draws"):
+        lines.append("  (independent draws from the exact engine: mixing holds by construction)")
+    return "\n".join(lines)
