@@ -64,7 +64,11 @@ class Run:
     estimates: pd.DataFrame
     population: pd.DataFrame
     diagnostics: Diagnostics
+    #: extra tables, each written as <name>.csv ("estimate_columns": a list of per-group
+    #: DataFrames keyed by "group", merged into estimates.csv instead)
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    #: extra documents, each written as <name>.json (but RECORD_DOCUMENTS go into run.json;
+    #: "_files": {filename: writer(path)} for anything else, such as figures)
     documents: dict[str, dict] = field(default_factory=dict)
     messages: list[str] = field(default_factory=list)
     seconds: float = 0.0
@@ -98,11 +102,12 @@ class Run:
             "notes": self.loaded.notes + self.messages,
             "population": self.population.to_dict(orient="records"),
             "fit_seconds": round(self.seconds, 3),
-            **{k: v for k, v in self.documents.items() if k in ("verification", "retry")},
+            **{k: v for k, v in self.documents.items() if k in RECORD_DOCUMENTS},
         }
 
 
-SAMPLER_KEYS = ("engine", "draws", "chains", "tune", "target_accept")
+#: documents kept inside run.json rather than in files of their own
+RECORD_DOCUMENTS = ("verification", "retry")
 
 
 def fit(
@@ -282,8 +287,11 @@ def write_run(run: Run, out: str | Path) -> Path:
         _io.write_csv(folder / POPULATION_FILE, run.population)
         _io.write_json(folder / DIAGNOSTICS_FILE, diag)
         for name, table in run.tables.items():
-            if isinstance(table, pd.DataFrame):
+            if isinstance(table, pd.DataFrame) and name != "estimate_columns":
                 _io.write_csv(folder / f"{name}.csv", table)
+        for name, doc in run.documents.items():
+            if not name.startswith("_") and name not in RECORD_DOCUMENTS:
+                _io.write_json(folder / f"{name}.json", doc)
         for name, writer in files.items():
             writer(folder / name)
         run.idata.to_netcdf(str(folder / POSTERIOR_FILE), engine="h5netcdf")
