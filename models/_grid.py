@@ -216,23 +216,24 @@ def fit_grid(
             (1, 1): rel[:, -1].max(),
         }
         grew = False
+        open_edges = []
         for (axis, side), value in edges.items():
-            at_bound = (
-                lo[axis] <= (U_BOUNDS, V_BOUNDS)[axis][0]
-                if side == 0
-                else hi[axis] >= (U_BOUNDS, V_BOUNDS)[axis][1]
-            )
-            if value > np.log(EDGE_TOLERANCE) and not at_bound:
+            bounds = (U_BOUNDS, V_BOUNDS)[axis]
+            at_bound = lo[axis] <= bounds[0] if side == 0 else hi[axis] >= bounds[1]
+            if at_bound:
+                continue  # the hard cap of the space (kappa <= 1e8): mass past it is not ours
+            open_edges.append(value)
+            if value > np.log(EDGE_TOLERANCE):
                 span = hi[axis] - lo[axis]
                 if side == 0:
-                    lo[axis] = max(lo[axis] - 0.5 * span, (U_BOUNDS, V_BOUNDS)[axis][0])
+                    lo[axis] = max(lo[axis] - 0.5 * span, bounds[0])
                 else:
-                    hi[axis] = min(hi[axis] + 0.5 * span, (U_BOUNDS, V_BOUNDS)[axis][1])
+                    hi[axis] = min(hi[axis] + 0.5 * span, bounds[1])
                 grew = True
         if not grew or widenings >= 12:
             break
         widenings += 1
-    edge_density = float(np.exp(max(edges.values())))
+    edge_density = float(np.exp(max(open_edges))) if open_edges else 0.0
 
     # refinement: the same box with nodes halfway between, compare every posterior mean
     change = np.inf

@@ -22,6 +22,7 @@ TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
 FALSE_WORDS = {"0", "false", "f", "no", "n", "failure", "0.0"}
 CSV_SUFFIXES = {".csv", ".txt", ".tsv"}
 PARQUET_SUFFIXES = {".parquet", ".pq"}
+MAX_COUNT = 10**15  # exact in float64 and int64 alike
 
 
 @dataclass
@@ -113,6 +114,11 @@ def _parse_counts(values: pd.Series, column: str, groups: pd.Series, problems: l
             )
         elif number < 0:
             problems.append(f"{where}: column {column!r} is {text!r}; counts must be >= 0")
+        elif number > MAX_COUNT:
+            problems.append(
+                f"{where}: column {column!r} is {text!r}; counts above {MAX_COUNT:.0e} are not"
+                " supported"
+            )
         else:
             out[i] = int(round(number))
     return out
