@@ -47,14 +47,16 @@ class BetaMixturePosteriors:
         pair_successes: np.ndarray,
         pair_trials: np.ndarray,
         index: np.ndarray,
+        quantile_source: BetaMixturePosteriors | None = None,
     ) -> None:
         self.weights = weights / weights.sum()
+        self.quantile_source = quantile_source
         self.a = a
         self.b = b
         self.y = pair_successes.astype(float)
         self.n = pair_trials.astype(float)
         self.index = index
-        cells = len(self.y) * len(self.weights)
+        cells = len(self.y) * len((quantile_source or self).weights)
         self.exact_quantiles = cells <= EXACT_QUANTILE_CELLS
 
     def _chunks(self):
@@ -111,6 +113,8 @@ class BetaMixturePosteriors:
 
     def ppf(self, q: float, *, tol: float = 1e-10, max_iter: int = 60) -> np.ndarray:
         """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile."""
+        if self.quantile_source is not None:
+            return self.quantile_source.ppf(q, tol=tol, max_iter=max_iter)
         m1 = np.empty(len(self.y))
         m2 = np.empty(len(self.y))
         for sl, alpha, beta in self._chunks():
