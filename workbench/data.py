@@ -23,6 +23,7 @@ FALSE_WORDS = {"0", "false", "f", "no", "n", "failure", "0.0"}
 CSV_SUFFIXES = {".csv", ".txt", ".tsv"}
 PARQUET_SUFFIXES = {".parquet", ".pq"}
 MAX_COUNT = 10**15  # exact in float64 and int64 alike
+DETAILED_PROBLEMS = 5  # rows described in full in one message; further ones are counted
 
 
 @dataclass
@@ -90,57 +91,77 @@ def _row_label(i: int) -> str:
     return f"row {i + 1} (line {i + 2})"
 
 
+def _count_problem(v: object, column: str) -> str | None:
+    """Why one cell is not a usable count, or None if it is."""
+    text = str(v).strip() if v is not None else ""
+    try:
+        number = float(text) if isinstance(v, str) or v is None else float(v)
+    except (TypeError, ValueError):
+        number = None
+    if number is None or text == "" or (isinstance(v, float) and np.isnan(v)):
+        return (
+            f"column {column!r} has {text or 'a blank'!r} where a whole number is needed;"
+            " fill in the count"
+        )
+    if not np.isfinite(number):
+        return f"column {column!r} is {text!r}; counts must be finite"
+    if number != round(number):
+        return f"column {column!r} is {text!r}, not a whole number; counts are integers"
+    if number < 0:
+        return f"column {column!r} is {text!r}; counts must be >= 0"
+    if number > MAX_COUNT:
+        return f"column {column!r} is {text!r}; counts above {MAX_COUNT:.0e} are not supported"
+    return None
+
+
+def _report(bad: np.ndarray, groups: pd.Series, problems: list, describe) -> None:
+    # (row, sentence-maker): sentences are made only for the rows a message shows
+    for i in bad:
+        problems.append(
+            (int(i), lambda i=i: f"{_row_label(i)} (group {str(groups.iloc[i])!r}): {describe(i)}")
+        )
+
+
+def _raise_problems(problems: list) -> None:
+    problems.sort(key=lambda p: p[0])
+    shown = [make() for _, make in problems[:DETAILED_PROBLEMS]]
+    raise DataError(join_problems(shown + [""] * (len(problems) - len(shown))) + ".")
+
+
 def _parse_counts(values: pd.Series, column: str, groups: pd.Series, problems: list[str]):
-    """Whole numbers >= 0 from a column, collecting one problem per bad row."""
-    out = np.zeros(len(values), dtype=np.int64)
+    """Whole numbers >= 0 from a column (vectorised), one problem per bad row."""
+    if values.dtype.kind in "iu":
+        numbers = values.to_numpy(dtype=float)
+    else:
+        text = values.astype("string").str.strip() if values.dtype.kind in "OSUT" or str(
+            values.dtype).startswith("str") else values
+        numbers = pd.to_numeric(text, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(numbers) & (numbers == np.round(numbers)) & (numbers >= 0)
+        ok &= numbers <= MAX_COUNT
+    bad = np.flatnonzero(~ok)
     raw = values.to_numpy(dtype=object)
-    for i, v in enumerate(raw):
-        text = str(v).strip() if v is not None else ""
-        try:
-            number = float(text) if isinstance(v, str) or v is None else float(v)
-        except (TypeError, ValueError):
-            number = None
-        where = f"{_row_label(i)} (group {str(groups.iloc[i])!r})"
-        if number is None or text == "" or (isinstance(v, float) and np.isnan(v)):
-            problems.append(
-                f"{where}: column {column!r} has {text or 'a blank'!r} where a whole number is"
-                " needed; fill in the count"
-            )
-        elif not np.isfinite(number):
-            problems.append(f"{where}: column {column!r} is {text!r}; counts must be finite")
-        elif number != round(number):
-            problems.append(
-                f"{where}: column {column!r} is {text!r}, not a whole number; counts are integers"
-            )
-        elif number < 0:
-            problems.append(f"{where}: column {column!r} is {text!r}; counts must be >= 0")
-        elif number > MAX_COUNT:
-            problems.append(
-                f"{where}: column {column!r} is {text!r}; counts above {MAX_COUNT:.0e} are not"
-                " supported"
-            )
-        else:
-            out[i] = int(round(number))
+    bad = np.array([i for i in bad if _count_problem(raw[i], column) is not None], dtype=int)
+    _report(bad, groups, problems, lambda i: _count_problem(raw[i], column))
+    out = np.zeros(len(values), dtype=np.int64)
+    out[ok] = numbers[ok].astype(np.int64)
     return out
 
 
 def _parse_outcomes(values: pd.Series, column: str, groups: pd.Series, problems: list[str]):
-    out = np.zeros(len(values), dtype=np.int64)
-    for i, v in enumerate(values.to_numpy(dtype=object)):
-        if isinstance(v, bool | np.bool_):
-            out[i] = int(v)
-            continue
-        text = str(v).strip().lower() if v is not None else ""
-        if text in TRUE_WORDS:
-            out[i] = 1
-        elif text in FALSE_WORDS:
-            out[i] = 0
-        else:
-            problems.append(
-                f"{_row_label(i)} (group {str(groups.iloc[i])!r}): column {column!r} has"
-                f" {str(v)!r}; outcomes must be 1/0, true/false or yes/no"
-            )
-    return out
+    """1 / 0 from words or booleans (vectorised), one problem per unknown value."""
+    if values.dtype == bool:
+        return values.to_numpy(dtype=np.int64)
+    raw = values.to_numpy(dtype=object)
+    words = pd.Series(raw).map(
+        lambda v: str(v).strip().lower() if not isinstance(v, bool | np.bool_) else str(int(v))
+    )
+    is_true = words.isin(TRUE_WORDS).to_numpy()
+    is_false = words.isin(FALSE_WORDS).to_numpy()
+    bad = np.flatnonzero(~(is_true | is_false))
+    _report(bad, groups, problems, lambda i: (
+        f"column {column!r} has {str(raw[i])!r}; outcomes must be 1/0, true/false or yes/no"))
+    return is_true.astype(np.int64)
 
 
 def load_groups(
@@ -165,25 +186,27 @@ def load_groups(
         _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
     if len(table) == 0:
         raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
-    labels = table[group].map(lambda v: "" if v is None or (isinstance(v, float) and np.isnan(v)) else str(v))
-    problems: list[str] = []
-    for i in np.flatnonzero(labels.str.strip().eq("").to_numpy()):
-        problems.append(f"{_row_label(i)}: column {group!r} is blank; every row needs a group label")
+    column = table[group]
+    labels = column.where(column.notna(), "").astype(str)
+    problems: list = []
+    blank = np.flatnonzero(labels.str.strip().eq("").to_numpy())
+    for i in blank:
+        problems.append((int(i), lambda i=i: (
+            f"{_row_label(i)}: column {group!r} is blank; every row needs a group label")))
     if outcome is not None:
         y = _parse_outcomes(table[outcome], outcome, labels, problems)
         n = np.ones(len(table), dtype=np.int64)
     else:
         y = _parse_counts(table[successes], successes, labels, problems)
         n = _parse_counts(table[trials], trials, labels, problems)
-        for i in np.flatnonzero(y > n):
-            if not any(p.startswith(_row_label(i) + " ") for p in problems):
-                problems.append(
-                    f"{_row_label(i)} (group {labels.iloc[i]!r}): {successes}={y[i]} exceeds"
-                    f" {trials}={n[i]}; each row needs 0 <= {successes} <= {trials}"
-                )
+        flagged = np.zeros(len(table), dtype=bool)
+        flagged[[i for i, _ in problems]] = True
+        over = np.flatnonzero((y > n) & ~flagged)
+        _report(over, labels, problems, lambda i: (
+            f"{successes}={y[i]} exceeds {trials}={n[i]}; each row needs"
+            f" 0 <= {successes} <= {trials}"))
     if problems:
-        problems.sort(key=lambda p: int(p.split()[1]) if p.startswith("row ") else 0)
-        raise DataError(join_problems(problems) + ".")
+        _raise_problems(problems)
 
     frame = pd.DataFrame({"group": labels.to_numpy(), "successes": y, "trials": n})
     summed = frame.groupby("group", sort=False).agg(
