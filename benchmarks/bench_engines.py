@@ -55,8 +55,12 @@ def run_baseline(groups: int) -> dict:
     th = trace.posterior["theta"]
     means = th.mean(("chain", "draw")).values
     sd = th.std(("chain", "draw")).values
-    return {"seconds": seconds, "means": means.tolist(), "sd": sd.tolist(),
-            "divergences": int(trace.sample_stats["diverging"].sum())}
+    return {
+        "seconds": seconds,
+        "means": means.tolist(),
+        "sd": sd.tolist(),
+        "divergences": int(trace.sample_stats["diverging"].sum()),
+    }
 
 
 def child(kind: str, groups: int) -> None:
@@ -89,8 +93,10 @@ def main() -> None:
         child(args.child[0], int(args.child[1]))
         return
     print(f"machine: {os.cpu_count()} cores; numbers are wall-clock seconds in this run")
-    print("| groups | exact engine | exact peak MB | plain PyMC (default pm.sample) |"
-          " PyMC peak MB | speed-up | max abs diff of means | max diff / PyMC sd |")
+    print(
+        "| groups | exact engine | exact peak MB | plain PyMC (default pm.sample) |"
+        " PyMC peak MB | speed-up | max abs diff of means | max diff / PyMC sd |"
+    )
     print("|---|---|---|---|---|---|---|---|")
     skip_baseline = False
     for g in args.groups:
@@ -100,16 +106,21 @@ def main() -> None:
         if base is None:
             note = "did not finish" if attempted else "not run: a smaller size did not finish"
             skip_baseline = True  # a larger problem will not finish either
-            print(f"| {g:,} | {ex['seconds']:.1f} s | {ex['peak_mb']:.0f} | over"
-                  f" {args.limit / 60:.0f} min ({note}) | - | > {args.limit / ex['seconds']:.0f}x |"
-                  " - | - |", flush=True)
+            print(
+                f"| {g:,} | {ex['seconds']:.1f} s | {ex['peak_mb']:.0f} | over"
+                f" {args.limit / 60:.0f} min ({note}) | - | > {args.limit / ex['seconds']:.0f}x |"
+                " - | - |",
+                flush=True,
+            )
             continue
         diff = np.abs(np.array(ex["means"]) - np.array(base["means"]))
         rel = diff / np.array(base["sd"])
-        print(f"| {g:,} | {ex['seconds']:.1f} s | {ex['peak_mb']:.0f} | {base['seconds']:.1f} s"
-              f" ({base['divergences']} divergences) | {base['peak_mb']:.0f} |"
-              f" {base['seconds'] / ex['seconds']:.0f}x | {diff.max():.2g} | {rel.max():.2f} |",
-              flush=True)
+        print(
+            f"| {g:,} | {ex['seconds']:.1f} s | {ex['peak_mb']:.0f} | {base['seconds']:.1f} s"
+            f" ({base['divergences']} divergences) | {base['peak_mb']:.0f} |"
+            f" {base['seconds'] / ex['seconds']:.0f}x | {diff.max():.2g} | {rel.max():.2f} |",
+            flush=True,
+        )
 
 
 if __name__ == "__main__":

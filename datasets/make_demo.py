@@ -15,9 +15,28 @@ import pandas as pd
 
 SEED = 20261201
 MEAN, CONCENTRATION = 0.18, 60.0
-FIRST = ["Alder", "Birch", "Cedar", "Dune", "Ember", "Fern", "Granite", "Heath", "Iris", "Juniper",
-         "Kestrel", "Larch", "Moss", "Nettle", "Oriel", "Pebble", "Quarry", "Rowan", "Sorrel",
-         "Thistle"]
+FIRST = [
+    "Alder",
+    "Birch",
+    "Cedar",
+    "Dune",
+    "Ember",
+    "Fern",
+    "Granite",
+    "Heath",
+    "Iris",
+    "Juniper",
+    "Kestrel",
+    "Larch",
+    "Moss",
+    "Nettle",
+    "Oriel",
+    "Pebble",
+    "Quarry",
+    "Rowan",
+    "Sorrel",
+    "Thistle",
+]
 SECOND = ["Quay", "Row", "Yard", "Cross"]
 REGIONS = ["North", "Coast", "Valley", "City"]
 
@@ -33,8 +52,9 @@ def make(seed: int = SEED) -> tuple[pd.DataFrame, pd.DataFrame]:
     visitors[1:4] = [2, 3, 5]  # a few tiny branches, where raw rates mislead most
     signups = rng.binomial(visitors, true_rate)
     region = [REGIONS[i % len(REGIONS)] for i in range(g)]
-    data = pd.DataFrame({"branch": names, "region": region, "signups": signups,
-                         "visitors": visitors})
+    data = pd.DataFrame(
+        {"branch": names, "region": region, "signups": signups, "visitors": visitors}
+    )
     truth = pd.DataFrame({"branch": names, "true_rate": true_rate})
     return data, truth
 

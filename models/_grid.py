@@ -146,8 +146,9 @@ class GridPosterior:
         pairs, index = np.unique(np.stack([successes, trials], axis=1), axis=0, return_inverse=True)
         coarse = None
         if quantile_stride and len(self.u) > 2 * quantile_stride:
-            coarse = self.mixture(successes, trials, mass=1 - 1e-10, stride=quantile_stride,
-                                  quantile_stride=None)
+            coarse = self.mixture(
+                successes, trials, mass=1 - 1e-10, stride=quantile_stride, quantile_stride=None
+            )
         return BetaMixturePosteriors(
             w[keep],
             mu[keep] * kappa[keep],

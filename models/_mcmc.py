@@ -17,8 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .exceptions import SamplingError
 from ._grid import HyperPrior
+from .exceptions import SamplingError
 
 
 @dataclass(frozen=True)

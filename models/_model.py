@@ -8,18 +8,16 @@ from typing import ClassVar
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from ._data import GroupCounts
 from ._grid import HyperPrior, fit_grid
 from ._mcmc import SamplerSettings, sample_hyper
-from ._mixture import BetaMixturePosteriors, BetaPosteriors
+from ._mixture import BetaPosteriors
 from ._posterior import add_log_likelihood, make_idata
 from .exceptions import NotFittedError, ParameterError
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
-    import arviz as az
 
 #: Columns of summary(), in order; later tables append their own.
 SUMMARY_COLUMNS = [
@@ -384,8 +382,11 @@ class BetaBinomial(_Estimator):
                 data.successes, data.trials, self.prior_, settings, seed
             )
             self.exact_ = None
-            extra = {"tune": self.tune, "target_accept": float(self.target_accept),
-                     "sampler": "pymc-nuts, collapsed (mu, log kappa)"}
+            extra = {
+                "tune": self.tune,
+                "target_accept": float(self.target_accept),
+                "sampler": "pymc-nuts, collapsed (mu, log kappa)",
+            }
         a = mu[..., None] * kappa[..., None]
         b = (1 - mu[..., None]) * kappa[..., None]
         y = data.successes[None, None, :]
@@ -428,7 +429,3 @@ def make_model(name: str, **settings) -> _Estimator:
         if "__init__" in vars(klass):
             accepted |= set(inspect.signature(klass.__init__).parameters)
     return cls(**{k: v for k, v in settings.items() if k in accepted and v is not None})
-
-
-
-

@@ -67,12 +67,18 @@ def read_table(source: str | Path | pd.DataFrame) -> tuple[pd.DataFrame, str]:
     except DataError:
         raise
     except pd.errors.EmptyDataError as exc:
-        raise DataError(f"{name!r} is empty; it needs a header row and at least one data row.") from exc
+        raise DataError(
+            f"{name!r} is empty; it needs a header row and at least one data row."
+        ) from exc
     except UnicodeDecodeError as exc:
-        raise DataError(f"cannot read {name!r}: it is not UTF-8 text; save it as UTF-8 CSV.") from exc
+        raise DataError(
+            f"cannot read {name!r}: it is not UTF-8 text; save it as UTF-8 CSV."
+        ) from exc
     except Exception as exc:  # noqa: BLE001 - any reader failure becomes a one-line DataError
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise DataError(f"cannot read {name!r}: {first}; check that it is a valid {suffix or 'CSV'} file.") from exc
+        raise DataError(
+            f"cannot read {name!r}: {first}; check that it is a valid {suffix or 'CSV'} file."
+        ) from exc
     table.columns = [str(c).strip() for c in table.columns]
     return table, name
 
@@ -133,8 +139,11 @@ def _parse_counts(values: pd.Series, column: str, groups: pd.Series, problems: l
     if values.dtype.kind in "iu":
         numbers = values.to_numpy(dtype=float)
     else:
-        text = values.astype("string").str.strip() if values.dtype.kind in "OSUT" or str(
-            values.dtype).startswith("str") else values
+        text = (
+            values.astype("string").str.strip()
+            if values.dtype.kind in "OSUT" or str(values.dtype).startswith("str")
+            else values
+        )
         numbers = pd.to_numeric(text, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     with np.errstate(invalid="ignore"):
         ok = np.isfinite(numbers) & (numbers == np.round(numbers)) & (numbers >= 0)
@@ -159,8 +168,14 @@ def _parse_outcomes(values: pd.Series, column: str, groups: pd.Series, problems:
     is_true = words.isin(TRUE_WORDS).to_numpy()
     is_false = words.isin(FALSE_WORDS).to_numpy()
     bad = np.flatnonzero(~(is_true | is_false))
-    _report(bad, groups, problems, lambda i: (
-        f"column {column!r} has {str(raw[i])!r}; outcomes must be 1/0, true/false or yes/no"))
+    _report(
+        bad,
+        groups,
+        problems,
+        lambda i: (
+            f"column {column!r} has {str(raw[i])!r}; outcomes must be 1/0, true/false or yes/no"
+        ),
+    )
     return is_true.astype(np.int64)
 
 
@@ -191,8 +206,14 @@ def load_groups(
     problems: list = []
     blank = np.flatnonzero(labels.str.strip().eq("").to_numpy())
     for i in blank:
-        problems.append((int(i), lambda i=i: (
-            f"{_row_label(i)}: column {group!r} is blank; every row needs a group label")))
+        problems.append(
+            (
+                int(i),
+                lambda i=i: (
+                    f"{_row_label(i)}: column {group!r} is blank; every row needs a group label"
+                ),
+            )
+        )
     if outcome is not None:
         y = _parse_outcomes(table[outcome], outcome, labels, problems)
         n = np.ones(len(table), dtype=np.int64)
@@ -202,9 +223,15 @@ def load_groups(
         flagged = np.zeros(len(table), dtype=bool)
         flagged[[i for i, _ in problems]] = True
         over = np.flatnonzero((y > n) & ~flagged)
-        _report(over, labels, problems, lambda i: (
-            f"{successes}={y[i]} exceeds {trials}={n[i]}; each row needs"
-            f" 0 <= {successes} <= {trials}"))
+        _report(
+            over,
+            labels,
+            problems,
+            lambda i: (
+                f"{successes}={y[i]} exceeds {trials}={n[i]}; each row needs"
+                f" 0 <= {successes} <= {trials}"
+            ),
+        )
     if problems:
         _raise_problems(problems)
 
@@ -229,8 +256,10 @@ def load_groups(
     reconciliation = {
         "source": name,
         "layout": "one row per trial" if outcome is not None else "aggregated counts",
-        "columns": {"group": group, **({"outcome": outcome} if outcome else
-                                       {"successes": successes, "trials": trials})},
+        "columns": {
+            "group": group,
+            **({"outcome": outcome} if outcome else {"successes": successes, "trials": trials}),
+        },
         "rows_read": int(len(table)),
         "rows_used": int(len(table)),
         "rows_dropped": 0,

@@ -116,7 +116,10 @@ def _quantity_table(idata) -> pd.DataFrame:
 
 
 def _run_figures(idata) -> dict:
-    out: dict = {"engine": attr(idata, "engine"), "independent_draws": bool(attr(idata, "independent_draws", 0))}
+    out: dict = {
+        "engine": attr(idata, "engine"),
+        "independent_draws": bool(attr(idata, "independent_draws", 0)),
+    }
     post = idata.posterior
     out["chains"] = int(post.sizes["chain"])
     out["draws_per_chain"] = int(post.sizes["draw"])
@@ -182,8 +185,13 @@ def diagnose(idata, thresholds: Thresholds | None = None) -> Diagnostics:
     if run.get("divergences", 0) > th.divergences:
         fail("sampler", "divergences", run["divergences"], th.divergences, "above")
     if run.get("treedepth_share", 0.0) > th.treedepth_share:
-        fail("sampler", "share of draws at maximum tree depth", run["treedepth_share"],
-             th.treedepth_share, "above")
+        fail(
+            "sampler",
+            "share of draws at maximum tree depth",
+            run["treedepth_share"],
+            th.treedepth_share,
+            "above",
+        )
     for chain, value in enumerate(run.get("ebfmi", [])):
         if value < th.ebfmi:
             fail(f"chain {chain}", "E-BFMI", value, th.ebfmi, "below")
@@ -202,8 +210,13 @@ def diagnose(idata, thresholds: Thresholds | None = None) -> Diagnostics:
         if edge is not None and float(edge) > th.grid_edge_density:
             fail("grid", "density at the grid edge", float(edge), th.grid_edge_density, "above")
         if change is not None and float(change) > th.grid_refinement_change:
-            fail("grid", "change of posterior means under refinement", float(change),
-                 th.grid_refinement_change, "above")
+            fail(
+                "grid",
+                "change of posterior means under refinement",
+                float(change),
+                th.grid_refinement_change,
+                "above",
+            )
     verdict = READY if not reasons else NOT_READY
     return Diagnostics(table, run, verdict, reasons, remedies_for(reasons, idata), notes, th)
 

@@ -4,13 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from helpers import simulate
 from scipy import integrate, special, stats
 
 from models import BetaBinomial, GroupCounts, HyperPrior
 from models._grid import _log_prior, fit_grid
 from models._mixture import BetaMixturePosteriors
-
-from helpers import simulate
 
 
 @pytest.mark.reference
@@ -39,7 +38,11 @@ def test_single_component_mixture_is_scipy_beta():
     n = np.array([5, 20, 9, 100])
     mu, kappa = 0.3, 12.0
     mix = BetaMixturePosteriors(
-        np.array([1.0]), np.array([mu * kappa]), np.array([(1 - mu) * kappa]), y, n,
+        np.array([1.0]),
+        np.array([mu * kappa]),
+        np.array([(1 - mu) * kappa]),
+        y,
+        n,
         np.arange(4),
     )
     ref = stats.beta(mu * kappa + y, (1 - mu) * kappa + n - y)
@@ -129,16 +132,21 @@ def _sbc_ranks(engine, datasets, draws, seed, groups=8):
     prior = HyperPrior()
     ranks = {"mu": [], "kappa": [], "theta0": [], "theta1": []}
     n = np.array([3, 5, 10, 20, 40, 80, 150, 300])[:groups]
-    for i in range(datasets):
+    for _ in range(datasets):
         mu = rng.beta(prior.mu_a, prior.mu_b)
         kappa = np.exp(rng.normal(np.log(prior.kappa_median), prior.kappa_log_sd))
         theta = rng.beta(mu * kappa, (1 - mu) * kappa, size=groups)
         theta = np.clip(theta, 1e-300, 1.0)
         y = rng.binomial(n, theta)
         counts = GroupCounts([f"g{j}" for j in range(groups)], y, n)
-        fit = BetaBinomial(engine=engine, draws=draws, chains=1 if engine == "exact" else 2,
-                           random_seed=int(rng.integers(2**31)), progress=False,
-                           tune=500).fit(counts)
+        fit = BetaBinomial(
+            engine=engine,
+            draws=draws,
+            chains=1 if engine == "exact" else 2,
+            random_seed=int(rng.integers(2**31)),
+            progress=False,
+            tune=500,
+        ).fit(counts)
         post = fit.idata_.posterior
         ranks["mu"].append(int((post["mu"].values.ravel() < mu).sum()))
         ranks["kappa"].append(int((post["kappa"].values.ravel() < kappa).sum()))

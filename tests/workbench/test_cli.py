@@ -10,8 +10,14 @@ import pytest
 from workbench.cli import main
 
 ESTIMATE_COLUMNS = [
-    "group", "successes", "trials", "observed_rate", "posterior_mean", "posterior_median",
-    "lower", "upper",
+    "group",
+    "successes",
+    "trials",
+    "observed_rate",
+    "posterior_mean",
+    "posterior_median",
+    "lower",
+    "upper",
 ]
 
 
@@ -52,8 +58,23 @@ def test_fit_every_model_and_target(tmp_path):
     path = csv(tmp_path, [f"g{i},{i},{3 * i + 4}" for i in range(12)])
     for model in ("beta-binomial", "no-pooling", "complete-pooling"):
         out = tmp_path / model
-        assert main(["fit", str(path), "--model", model, "--target", "0.3", "--out", str(out),
-                     "--seed", "1"]) == 0
+        assert (
+            main(
+                [
+                    "fit",
+                    str(path),
+                    "--model",
+                    model,
+                    "--target",
+                    "0.3",
+                    "--out",
+                    str(out),
+                    "--seed",
+                    "1",
+                ]
+            )
+            == 0
+        )
         est = pd.read_csv(out / "estimates.csv")
         assert "prob_above_target" in est.columns
         assert est["prob_above_target"].between(0, 1).all()
@@ -82,8 +103,20 @@ def test_help_on_every_command(capsys):
     for argv in (["--help"], ["fit", "--help"], ["demo", "--help"]):
         assert main(argv) == 0
     text = capsys.readouterr().out
-    for option in ("--group", "--successes", "--trials", "--outcome", "--model", "--engine",
-                   "--target", "--level", "--seed", "--out", "--verify", "--retry"):
+    for option in (
+        "--group",
+        "--successes",
+        "--trials",
+        "--outcome",
+        "--model",
+        "--engine",
+        "--target",
+        "--level",
+        "--seed",
+        "--out",
+        "--verify",
+        "--retry",
+    ):
         assert option in text
 
 
@@ -127,8 +160,22 @@ def test_starved_mcmc_not_ready_exits_3_normal_run_ready(tmp_path, capsys):
     # a deliberately starved run must not be called final; a normal one of the same data is
     path = csv(tmp_path, [f"g{i},{i % 7},{12 + 3 * i}" for i in range(30)])
     starved = tmp_path / "starved"
-    code = main(["fit", str(path), "--engine", "mcmc", "--draws", "30", "--tune", "30",
-                 "--seed", "1", "--out", str(starved)])
+    code = main(
+        [
+            "fit",
+            str(path),
+            "--engine",
+            "mcmc",
+            "--draws",
+            "30",
+            "--tune",
+            "30",
+            "--seed",
+            "1",
+            "--out",
+            str(starved),
+        ]
+    )
     assert code == 3
     diag = json.loads((starved / "diagnostics.json").read_text())
     assert diag["verdict"] == "not-ready" and diag["reasons"] and diag["remedies"]
@@ -144,8 +191,24 @@ def test_exact_and_mcmc_runs_and_verify(tmp_path, capsys):
     path = csv(tmp_path, [f"g{i},{(i * 7) % 11},{15 + 4 * i}" for i in range(25)])
     for engine in ("exact", "mcmc"):
         out = tmp_path / engine
-        assert main(["fit", str(path), "--model", "beta-binomial", "--engine", engine,
-                     "--verify", "--seed", "4", "--out", str(out)]) == 0
+        assert (
+            main(
+                [
+                    "fit",
+                    str(path),
+                    "--model",
+                    "beta-binomial",
+                    "--engine",
+                    engine,
+                    "--verify",
+                    "--seed",
+                    "4",
+                    "--out",
+                    str(out),
+                ]
+            )
+            == 0
+        )
         est = pd.read_csv(out / "estimates.csv")
         assert "shrinkage" in est.columns
         ver = json.loads((out / "run.json").read_text())["verification"]
@@ -157,8 +220,23 @@ def test_exact_and_mcmc_runs_and_verify(tmp_path, capsys):
 def test_retry_applies_first_remedy(tmp_path, capsys):
     path = csv(tmp_path, [f"g{i},{i % 7},{12 + 3 * i}" for i in range(30)])
     out = tmp_path / "retry"
-    code = main(["fit", str(path), "--engine", "mcmc", "--draws", "30", "--tune", "30",
-                 "--seed", "1", "--retry", "--out", str(out)])
+    code = main(
+        [
+            "fit",
+            str(path),
+            "--engine",
+            "mcmc",
+            "--draws",
+            "30",
+            "--tune",
+            "30",
+            "--seed",
+            "1",
+            "--retry",
+            "--out",
+            str(out),
+        ]
+    )
     record = json.loads((out / "run.json").read_text())
     assert "retried with" in record["retry"]["applied"]
     assert code == (0 if record["final"] else 3)

@@ -37,7 +37,9 @@ def test_row_7_successes_exceed_trials_is_named(tmp_path):
 
 def test_missing_column_lists_columns_found(tmp_path):
     path = write(tmp_path, "clinic,recovered,treated\na,1,2\n")
-    with pytest.raises(DataError, match=r"no column 'group'.*found \['clinic', 'recovered', 'treated'\]"):
+    with pytest.raises(
+        DataError, match=r"no column 'group'.*found \['clinic', 'recovered', 'treated'\]"
+    ):
         load_groups(path)
     loaded = load_groups(path, group="clinic", successes="recovered", trials="treated")
     assert loaded.counts.n_groups == 1

@@ -27,11 +27,24 @@ def fake_mcmc(offset: float, draws=500, seed=0, diverging=0):
     mu = theta.mean(axis=2)
     div = np.zeros((4, draws), dtype=bool)
     div.flat[:diverging] = True
-    stats = {"diverging": div, "reached_max_treedepth": np.zeros((4, draws), dtype=bool),
-             "energy": rng.normal(size=(4, draws))}
-    return make_idata(COUNTS, theta, theta_new=mu, hyper={"mu": mu, "kappa": mu * 0 + 10},
-                      attrs={"model": "beta-binomial", "engine": "mcmc", "independent_draws": False,
-                             "tune": draws}, sample_stats=stats)
+    stats = {
+        "diverging": div,
+        "reached_max_treedepth": np.zeros((4, draws), dtype=bool),
+        "energy": rng.normal(size=(4, draws)),
+    }
+    return make_idata(
+        COUNTS,
+        theta,
+        theta_new=mu,
+        hyper={"mu": mu, "kappa": mu * 0 + 10},
+        attrs={
+            "model": "beta-binomial",
+            "engine": "mcmc",
+            "independent_draws": False,
+            "tune": draws,
+        },
+        sample_stats=stats,
+    )
 
 
 def test_mixed_chains_are_ready():
