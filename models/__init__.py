@@ -5,6 +5,7 @@ Never imports ``workbench``.
 
 from __future__ import annotations
 
+from ._closed import closed_form
 from ._data import GroupCounts
 from ._grid import HyperPrior
 from ._model import MODELS, SUMMARY_COLUMNS, BetaBinomial, CompletePooling, NoPooling, make_model
@@ -41,6 +42,7 @@ __all__ = [
     "WorkbenchError",
     "add_log_likelihood",
     "attr",
+    "closed_form",
     "counts_of",
     "log_likelihood_arrays",
     "make_model",

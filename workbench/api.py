@@ -31,6 +31,7 @@ from models import (
 from . import _io
 from .data import LoadedData, load_groups
 from .diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
+from . import ranking
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
@@ -107,7 +108,7 @@ class Run:
 
 
 #: documents kept inside run.json rather than in files of their own
-RECORD_DOCUMENTS = ("verification", "retry")
+RECORD_DOCUMENTS = ("verification", "retry", "ranking")
 
 
 def fit(
@@ -121,6 +122,9 @@ def fit(
     engine: str = "auto",
     level: float = 0.95,
     target: float | None = None,
+    top: int = ranking.DEFAULT_TOP,
+    better: str = "higher",
+    fdr: float = ranking.DEFAULT_FDR,
     seed: int | None = None,
     draws: int = 1000,
     chains: int = 4,
@@ -141,11 +145,15 @@ def fit(
     if model not in MODELS:
         quoted = ", ".join(repr(m) for m in MODELS)
         raise ParameterError(f"model={model!r} is not one of {quoted}.")
+    rank_opts = ranking.rank_options(top=top, better=better, fdr=fdr, level=level, target=target)
     settings = {
         "model": model,
         "engine": engine,
         "level": level,
         "target": target,
+        "top": rank_opts.top,
+        "better": rank_opts.better,
+        "fdr": rank_opts.fdr,
         "seed": seed,
         "draws": draws,
         "chains": chains,
@@ -176,6 +184,7 @@ def fit(
               documents=documents, messages=messages)
     if verify:
         run.documents["verification"] = verify_run(run, progress=progress)
+    ranking.add_to_run(run, top=rank_opts.top, better=rank_opts.better, fdr=rank_opts.fdr)
     run.seconds = time.perf_counter() - started
     if not diagnostics.ready:
         warnings.warn(
@@ -378,6 +387,8 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
             f" (max |z| {ver['max_abs_z']:.2f}; largest interval-end difference"
             f" {ver['max_abs_interval_difference']:.2g}) -> {'AGREE' if ver['agree'] else 'DISAGREE'}"
         )
+    if run.documents.get("ranking"):
+        lines.append(ranking.format_run(run))
     if out is not None:
         lines.append(f"wrote {out}/ ({'final' if run.ready else 'NOT FINAL: diagnostics failed'})")
     return "\n".join(lines)

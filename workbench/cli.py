@@ -14,6 +14,7 @@ from pathlib import Path
 from models import MODELS, ConvergenceWarning, WorkbenchError
 
 from . import api
+from . import predict, ranking
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
 
@@ -107,6 +108,9 @@ def _fit_kwargs(args: argparse.Namespace) -> dict:
         "engine": args.engine,
         "level": args.level,
         "target": args.target,
+        "top": args.top,
+        "better": args.better,
+        "fdr": args.fdr,
         "seed": args.seed,
         "draws": args.draws,
         "chains": args.chains,
@@ -151,6 +155,87 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return _fit_and_write(path, args, out, group="branch", successes="signups", trials="visitors")
 
 
+# -- rank and predict (issue 5) ------------------------------------------------------------
+# Numbers are taken as text and checked by the API, so a bad value is one "error:" line.
+
+
+def _add_ranking_options(p: argparse.ArgumentParser, *, sticky: bool = False) -> None:
+    keep = " (default: as recorded in the run, else {})" if sticky else " (default: {})"
+    g = p.add_argument_group("ranking")
+    g.add_argument("--top", metavar="K", default=None if sticky else ranking.DEFAULT_TOP,
+                   help="P(in best K) and P(in worst K) per group, K capped at the number of"
+                        " groups" + keep.format(ranking.DEFAULT_TOP))
+    g.add_argument("--better", metavar="higher|lower", default=None if sticky else "higher",
+                   help="which direction of the rate is better; rank 1 is the best"
+                        + keep.format("higher"))
+    g.add_argument("--fdr", metavar="Q", default=None if sticky else ranking.DEFAULT_FDR,
+                   help="target flags: largest set whose expected share of false flags is at"
+                        " most Q" + keep.format(ranking.DEFAULT_FDR))
+
+
+def cmd_rank(args: argparse.Namespace) -> int:
+    result = ranking.rank_folder(
+        args.folder, top=args.top, better=args.better, fdr=args.fdr, level=args.level,
+        target=args.target, compare=args.compare_groups, settle_chance=args.settle_chance,
+        max_trials=args.max_trials,
+    )
+    print(ranking.format_result(result))
+    print(f"wrote ranking files into {args.folder}/"
+          + ("" if result.final else " (NOT FINAL: the run's diagnostics failed)"))
+    return EXIT_OK if result.final else EXIT_NOT_READY
+
+
+def cmd_predict(args: argparse.Namespace) -> int:
+    pred = predict.predict_folder(args.folder, trials=args.future_trials, level=args.level,
+                                  seed=args.seed)
+    print(predict.format_prediction(pred))
+    print(f"wrote {args.folder}/{predict.PREDICTIONS_FILE}"
+          + ("" if pred.final else " (NOT FINAL: the run's diagnostics failed)"))
+    return EXIT_OK if pred.final else EXIT_NOT_READY
+
+
+def _add_rank_parser(sub) -> None:
+    r = sub.add_parser(
+        "rank", help="recompute ranks, target flags, pairwise, funnel data of a run folder",
+        description="Recompute the ranking step of a run folder: ranks.csv, pairwise.csv,"
+                    " funnel.csv, funnel_curve.csv, and with a target targets.json and"
+                    " trials_needed.csv; updates the rank and target columns of estimates.csv."
+                    " Rank intervals overlap; a rank is no verdict on a group or its people.",
+    )
+    r.add_argument("folder", type=Path, help="a run folder written by 'workbench fit'")
+    _add_ranking_options(r, sticky=True)
+    r.add_argument("--target", metavar="P", default=None,
+                   help="target rate: P(above/below), flags, trials still needed (default: as"
+                        " recorded in the run)")
+    r.add_argument("--level", metavar="L", default=None,
+                   help="mass of the central rank intervals (default: the run's level)")
+    r.add_argument("--compare-groups", metavar="A,B,C", default=None,
+                   help="groups for pairwise.csv (default: the best 10 by posterior mean)")
+    r.add_argument("--settle-chance", metavar="C", default=None,
+                   help="trials needed: chance that the comparison with the target is settled"
+                        f" (default {ranking.DEFAULT_SETTLE_CHANCE})")
+    r.add_argument("--max-trials", metavar="N", default=None,
+                   help=f"trials needed: search up to N more trials (default"
+                        f" {ranking.DEFAULT_MAX_TRIALS})")
+    r.set_defaults(func=cmd_rank)
+
+
+def _add_predict_parser(sub) -> None:
+    p = sub.add_parser(
+        "predict", help="successes in M future trials per group and for a new group",
+        description="Posterior predictive successes in M future trials for every group of a"
+                    " run folder and for a new, unseen group; writes predictions.csv.",
+    )
+    p.add_argument("folder", type=Path, help="a run folder written by 'workbench fit'")
+    p.add_argument("--trials", dest="future_trials", metavar="M", required=True,
+                   help="number of future trials per group")
+    p.add_argument("--level", metavar="L", default=None,
+                   help="mass of the central intervals (default: the run's level)")
+    p.add_argument("--seed", metavar="S", default=None,
+                   help="random seed of the simulation (default: one past the run's seed)")
+    p.set_defaults(func=cmd_predict)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="workbench",
@@ -175,13 +260,17 @@ def build_parser() -> argparse.ArgumentParser:
                    help="instead of counts: column of one outcome per row (1/0, true/false,"
                         " yes/no); rows are counted per group")
     _add_model_options(p, model_default=api.DEFAULT_MODEL)
+    _add_ranking_options(p)
     p.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("demo", help="fit the bundled invented demo data and write a run folder",
                        description="Fit the bundled, invented studio-branch sign-up data and write"
                                    " a run folder (default ./demo-run).")
     _add_model_options(d, model_default=api.DEFAULT_MODEL)
+    _add_ranking_options(d)
     d.set_defaults(func=cmd_demo)
+    _add_rank_parser(sub)
+    _add_predict_parser(sub)
     return parser
 
 
