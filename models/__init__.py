@@ -8,7 +8,15 @@ from __future__ import annotations
 from ._closed import closed_form
 from ._data import GroupCounts
 from ._grid import HyperPrior
-from ._model import MODELS, SUMMARY_COLUMNS, BetaBinomial, CompletePooling, NoPooling, make_model
+from ._model import (
+    MODELS,
+    SUMMARY_COLUMNS,
+    BetaBinomial,
+    CompletePooling,
+    LogitNormal,
+    NoPooling,
+    make_model,
+)
 from ._posterior import (
     add_log_likelihood,
     attr,
@@ -33,6 +41,7 @@ __all__ = [
     "DataError",
     "GroupCounts",
     "HyperPrior",
+    "LogitNormal",
     "MODELS",
     "NoPooling",
     "NotFittedError",

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import time
-import warnings
 from typing import ClassVar
 
 import numpy as np
 import pandas as pd
+from scipy import special
 
 from ._data import GroupCounts
 from ._grid import HyperPrior, fit_grid
@@ -15,9 +15,6 @@ from ._mcmc import SamplerSettings, sample_hyper
 from ._mixture import BetaPosteriors
 from ._posterior import add_log_likelihood, make_idata
 from .exceptions import NotFittedError, ParameterError
-
-with warnings.catch_warnings():
-    warnings.simplefilter("ignore", FutureWarning)
 
 #: Columns of summary(), in order; later tables append their own.
 SUMMARY_COLUMNS = [
@@ -112,8 +109,16 @@ class _Estimator:
             "independent_draws": engine == "exact",
             **extra_attrs,
         }
+        x, columns = getattr(self, "_covariates", (None, ()))
         idata = make_idata(
-            data, theta, theta_new=theta_new, hyper=hyper, attrs=attrs, sample_stats=sample_stats
+            data,
+            theta,
+            theta_new=theta_new,
+            hyper=hyper,
+            attrs=attrs,
+            sample_stats=sample_stats,
+            covariates=x,
+            covariate_columns=columns,
         )
         add_log_likelihood(idata)
         self.fit_seconds_ = time.perf_counter() - started
@@ -176,7 +181,8 @@ class _Estimator:
         level = _check_level(level)
         post = self.idata_.posterior
         rows = []
-        for name in ("mu", "kappa", "between_group_sd", "theta_new"):
+        extra = [v for v in post.data_vars if v.startswith("beta_")]
+        for name in ("mu", "kappa", "between_group_sd", "theta_new", "alpha", "sigma", *extra):
             if name not in post:
                 continue
             x = post[name].values.ravel()
@@ -187,6 +193,9 @@ class _Estimator:
             "kappa": "concentration",
             "between_group_sd": "between_group_sd",
             "theta_new": "new_group_rate",
+            "alpha": "logit_mean",
+            "sigma": "logit_between_group_sd",
+            **{name: f"effect_per_sd_{name[5:]}" for name in extra},
         }
         table = pd.DataFrame(rows, columns=["quantity", "mean", "median", "lower", "upper"])
         table.insert(1, "parameter", table["quantity"])
@@ -411,8 +420,128 @@ class BetaBinomial(_Estimator):
         return (kappa[None, :] / (kappa[None, :] + uniq[:, None])).mean(axis=1)[inv.ravel()]
 
 
+class LogitNormal(_Estimator):
+    """Partial pooling on the log-odds scale, with optional group-level covariates.
+
+    logit theta_j = alpha + x_j . beta + sigma z_j, z_j ~ Normal(0, 1); covariates are
+    standardised (mean 0, sd 1), so ``alpha`` is the log-odds of a group with average
+    covariates, ``sigma`` the between-group sd of log-odds left after the covariates, and each
+    ``beta_<column>`` the change in log-odds per sd of that column. Priors:
+    alpha ~ Normal(0, 2.5), sigma ~ HalfNormal(1), beta ~ Normal(0, 1) (weakly informative on
+    the log-odds scale, common practice). MCMC only (PyMC NUTS); each group is sampled centred
+    or non-centred by its information content (see ``models._logit``).
+    """
+
+    name = "logit-normal"
+    engines = ("mcmc",)
+
+    def __init__(
+        self,
+        *,
+        engine: str = "auto",
+        draws: int = 1000,
+        chains: int = 4,
+        tune: int = 1000,
+        target_accept: float = 0.9,
+        alpha_prior: tuple[float, float] = (0.0, 2.5),
+        sigma_prior: float = 1.0,
+        effect_prior: float = 1.0,
+        random_seed: int | None = None,
+        progress: bool | None = None,
+    ) -> None:
+        super().__init__(engine=engine, draws=draws, chains=chains, random_seed=random_seed)
+        self.tune = tune
+        self.target_accept = target_accept
+        self.alpha_prior = alpha_prior
+        self.sigma_prior = sigma_prior
+        self.effect_prior = effect_prior
+        self.progress = progress
+
+    def _check_params(self) -> None:
+        super()._check_params()
+        if not isinstance(self.tune, int | np.integer) or self.tune < 0:
+            raise ParameterError(f"tune={self.tune!r} must be a whole number >= 0.")
+        if not (isinstance(self.target_accept, float | int) and 0.5 <= self.target_accept < 1):
+            raise ParameterError(
+                f"target_accept={self.target_accept!r} must be in [0.5, 1); 0.9 or 0.99 are usual."
+            )
+        for what in ("sigma_prior", "effect_prior"):
+            v = getattr(self, what)
+            if not (isinstance(v, int | float) and v > 0 and np.isfinite(v)):
+                raise ParameterError(f"{what}={v!r} must be a positive number.")
+
+    def _priors(self) -> dict:
+        a, b = self.alpha_prior
+        return {
+            "alpha": f"Normal({a:g}, {b:g})",
+            "sigma": f"HalfNormal({self.sigma_prior:g})",
+            "beta": f"Normal(0, {self.effect_prior:g}) per sd of each covariate",
+            "alpha_mean": float(a),
+            "alpha_sd": float(b),
+            "sigma_scale": float(self.sigma_prior),
+            "effect_sd": float(self.effect_prior),
+        }
+
+    def _fit(self, data, engine, seed):
+        from ._logit import covariate_names, population_rates, sample, standardise
+
+        x, info = standardise(data.covariates, data.n_groups)
+        hyper, eta, stats_, centred = sample(
+            data.successes,
+            data.trials,
+            x,
+            alpha_prior=tuple(map(float, self.alpha_prior)),
+            sigma_prior=float(self.sigma_prior),
+            beta_prior=float(self.effect_prior),
+            draws=self.draws,
+            tune=self.tune,
+            chains=self.chains,
+            target_accept=float(self.target_accept),
+            seed=seed,
+            progress=self.progress,
+        )
+        rng = np.random.default_rng(seed + 1)
+        alpha, sigma = hyper["alpha"], hyper["sigma"]
+        theta = special.expit(eta)
+        theta_new = special.expit(alpha + sigma * rng.standard_normal(alpha.shape))
+        mean, sd = population_rates(alpha, sigma)
+        out = {"alpha": alpha, "sigma": sigma, "mu": mean, "between_group_sd": sd}
+        names = covariate_names(info["columns"])
+        for k, name in enumerate(names):
+            out[name] = hyper["beta"][..., k]
+        self._covariates = (x, tuple(info["columns"]))
+        extra = {
+            "tune": self.tune,
+            "target_accept": float(self.target_accept),
+            "sampler": "pymc-nuts, per-group centred / non-centred log-odds",
+            "centred_groups": int(centred.sum()),
+            "covariates": info,
+            "covariate_effects": names,
+        }
+        return theta, theta_new, out, extra, stats_
+
+    def _shrinkage(self) -> np.ndarray:
+        # share of the way from the observed rate to the group's population-model mean
+        from ._logit import _GH_W, _GH_X
+        from ._posterior import logit_means
+
+        post = self.idata_.posterior
+        m = logit_means(self.idata_).reshape(-1, self.data_.n_groups)
+        sigma = post["sigma"].values.ravel()
+        keep = np.linspace(0, len(sigma) - 1, min(len(sigma), 200)).astype(int)
+        prior_mean = np.zeros(self.data_.n_groups)
+        for i in keep:
+            prior_mean += special.expit(m[i][:, None] + sigma[i] * _GH_X) @ _GH_W
+        prior_mean /= len(keep)
+        obs = self.data_.observed_rate
+        est = post["theta"].mean(("chain", "draw")).values
+        with np.errstate(invalid="ignore", divide="ignore"):
+            share = (obs - est) / (obs - prior_mean)
+        return np.where(np.isnan(obs), 1.0, np.clip(np.nan_to_num(share, nan=0.0), 0.0, 1.0))
+
+
 MODELS: dict[str, type[_Estimator]] = {
-    cls.name: cls for cls in (BetaBinomial, NoPooling, CompletePooling)
+    cls.name: cls for cls in (BetaBinomial, NoPooling, CompletePooling, LogitNormal)
 }
 
 

@@ -186,8 +186,12 @@ def load_groups(
     successes: str = "successes",
     trials: str = "trials",
     outcome: str | None = None,
+    covariates: list[str] | tuple[str, ...] = (),
 ) -> LoadedData:
     """Read, validate and aggregate a table into :class:`models.GroupCounts`.
+
+    ``covariates`` name numeric group-level columns (one value per group: rows of one group
+    must agree); they are kept beside the counts for models that use them.
 
     Raises
     ------
@@ -199,6 +203,8 @@ def load_groups(
         _require_columns(table, {"group": group, "outcome": outcome}, name)
     else:
         _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
+    for c in covariates:
+        _require_columns(table, {"covariates": c}, name)
     if len(table) == 0:
         raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
     column = table[group]
@@ -232,6 +238,21 @@ def load_groups(
                 f" 0 <= {successes} <= {trials}"
             ),
         )
+    x = {}
+    for c in covariates:
+        values = pd.to_numeric(table[c].astype("string").str.strip(), errors="coerce")
+        values = values.to_numpy(dtype=float, na_value=np.nan)
+        bad = np.flatnonzero(~np.isfinite(values))
+        raw = table[c].to_numpy(dtype=object)
+        _report(
+            bad,
+            labels,
+            problems,
+            lambda i, c=c, raw=raw: (
+                f"covariate column {c!r} has {str(raw[i])!r}; covariates must be finite numbers"
+            ),
+        )
+        x[c] = values
     if problems:
         _raise_problems(problems)
 
@@ -239,7 +260,25 @@ def load_groups(
     summed = frame.groupby("group", sort=False).agg(
         successes=("successes", "sum"), trials=("trials", "sum"), rows=("successes", "size")
     )
-    counts = GroupCounts(summed.index.to_numpy(), summed["successes"], summed["trials"])
+    cov_frame = None
+    if covariates:
+        per_row = pd.DataFrame(x)
+        per_row["group"] = labels.to_numpy()
+        spread = per_row.groupby("group", sort=False).agg(["min", "max"])
+        for c in covariates:
+            differ = spread.index[(spread[(c, "min")] != spread[(c, "max")]).to_numpy()]
+            if len(differ):
+                i = int(np.flatnonzero(labels.to_numpy() == differ[0])[1])
+                raise DataError(
+                    f"{_row_label(i)} (group {differ[0]!r}): covariate {c!r} differs between"
+                    f" rows of the same group ({len(differ)} group(s) so); a covariate takes one"
+                    " value per group."
+                )
+        cov_frame = per_row.groupby("group", sort=False)[list(covariates)].first()
+        cov_frame = cov_frame.loc[summed.index].reset_index(drop=True)
+    counts = GroupCounts(
+        summed.index.to_numpy(), summed["successes"], summed["trials"], covariates=cov_frame
+    )
     repeated = int((summed["rows"] > 1).sum())
     zero = summed.index[summed["trials"].to_numpy() == 0].astype(str).tolist()
     notes = []
@@ -256,6 +295,7 @@ def load_groups(
     reconciliation = {
         "source": name,
         "layout": "one row per trial" if outcome is not None else "aggregated counts",
+        "covariates": list(covariates),
         "columns": {
             "group": group,
             **({"outcome": outcome} if outcome else {"successes": successes, "trials": trials}),

@@ -22,7 +22,6 @@ with warnings.catch_warnings():
 
 READY = "ready"
 NOT_READY = "not-ready"
-HYPER = ("mu", "kappa")
 
 
 @dataclass(frozen=True)
@@ -83,7 +82,14 @@ def _num(x) -> float | None:
 
 def _quantity_table(idata) -> pd.DataFrame:
     post = idata.posterior
-    names = [v for v in ("theta", *HYPER) if v in post]
+    # every group rate and every (chain, draw) hyperparameter; theta_new and the derived
+    # between-group sd are functions of these
+    hyper = [
+        v
+        for v in post.data_vars
+        if post[v].dims == ("chain", "draw") and v not in ("theta_new", "between_group_sd")
+    ]
+    names = ["theta", *hyper]
     ds = post[names]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # constant quantities give NaN R-hat, reported as such
