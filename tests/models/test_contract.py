@@ -10,6 +10,7 @@ from models import (
     BetaBinomial,
     CompletePooling,
     GroupCounts,
+    LogitNormal,
     NoPooling,
     NotFittedError,
     ParameterError,
@@ -20,6 +21,7 @@ CASES = [
     (CompletePooling, "exact"),
     (BetaBinomial, "exact"),
     pytest.param(BetaBinomial, "mcmc", marks=pytest.mark.slow),
+    pytest.param(LogitNormal, "mcmc", marks=pytest.mark.slow),
 ]
 
 
