@@ -1,4 +1,4 @@
-"""The logit-normal hierarchy: integrated likelihood vs scipy quadrature; recovery of a known truth."""
+"""The logit-normal hierarchy: integrated likelihood vs scipy quadrature; known-truth recovery."""
 
 from __future__ import annotations
 
