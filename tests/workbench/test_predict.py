@@ -87,8 +87,25 @@ def data_csv(tmp_path_factory):
 
 
 def _fit(data_csv, folder, model, engine, *extra):
-    return cli.main(["fit", str(data_csv), "--model", model, "--engine", engine, "--draws", "150",
-                     "--chains", "2", "--seed", "2", "--out", str(folder), *extra])
+    return cli.main(
+        [
+            "fit",
+            str(data_csv),
+            "--model",
+            model,
+            "--engine",
+            engine,
+            "--draws",
+            "150",
+            "--chains",
+            "2",
+            "--seed",
+            "2",
+            "--out",
+            str(folder),
+            *extra,
+        ]
+    )
 
 
 @pytest.mark.parametrize("model, engine", MODELS)
@@ -102,7 +119,9 @@ def test_cli_predict_every_model(data_csv, tmp_path, capsys, model, engine):
     assert list(table.columns) == predict.COLUMNS
     assert len(table) == 21 and table["is_new_group"].sum() == 1
     assert (table["future_trials"] == 50).all()
-    assert ((0 <= table["lower"]) & (table["lower"] <= table["upper"]) & (table["upper"] <= 50)).all()
+    assert (
+        (0 <= table["lower"]) & (table["lower"] <= table["upper"]) & (table["upper"] <= 50)
+    ).all()
     est = pd.read_csv(folder / "estimates.csv")
     np.testing.assert_allclose(table["predicted_mean"].iloc[:-1], 50 * est["posterior_mean"])
     record = json.loads((folder / "run.json").read_text())

@@ -125,19 +125,23 @@ def test_fdr_flags_by_definition():
     assert not mask.any() and share == 0
 
 
-def _simulated_target_runs(n_sets=6, groups=300, target=0.2):
-    for seed in range(n_sets):
-        counts, truth = simulate(groups=groups, trials=(5, 150), seed=200 + seed)
+@pytest.fixture(scope="module")
+def target_runs():
+    """Six simulated data sets with known truth: counts, true rates, exact P(above 0.2)."""
+    runs = []
+    for seed in range(6):
+        counts, truth = simulate(groups=300, trials=(5, 150), seed=200 + seed)
         model = BetaBinomial(engine="exact", draws=50, chains=1, random_seed=seed).fit(counts)
-        yield counts, truth, np.clip(model.exact_.sf(target), 0, 1)
+        runs.append((counts, truth, np.clip(model.exact_.sf(0.2), 0, 1)))
+    return runs
 
 
-def test_target_flags_false_share_within_level():
+def test_target_flags_false_share_within_level(target_runs):
     # Bayesian FDR (Newton et al. 2004; Mueller et al. 2004): averaged over simulated data
     # sets with known truth, the realised share of false flags stays at or below the level
     level, target = 0.10, 0.2
     shares = []
-    for counts, truth, p_above in _simulated_target_runs(target=target):
+    for counts, truth, p_above in target_runs:
         table, doc = ranking.target_tables(counts.names, p_above, target, level)
         above = table["target_flag"].to_numpy() == "above target"
         below = table["target_flag"].to_numpy() == "below target"
@@ -150,12 +154,12 @@ def test_target_flags_false_share_within_level():
     assert np.mean(shares) <= level + 0.03, shares
 
 
-def test_target_probabilities_calibrated():
+def test_target_probabilities_calibrated(target_runs):
     # calibration (Dawid 1982): among groups given P(above target) near p, a share near p is
     # truly above; binned reliability over simulated data sets with known truth
     target = 0.2
     probs, hits = [], []
-    for _, truth, p_above in _simulated_target_runs(target=target):
+    for _, truth, p_above in target_runs:
         probs.append(p_above)
         hits.append(truth > target)
     probs, hits = np.concatenate(probs), np.concatenate(hits)
@@ -231,8 +235,9 @@ def test_funnel_flags_and_curve():
     assert set(table["outside_95"][(rate >= table["lower_95"]) & (rate <= table["upper_95"])]) <= {
         ""
     }
-    np.testing.assert_allclose(table["prob_above_benchmark"], stats.beta.sf(
-        pooled, model.exact_.alpha, model.exact_.beta))
+    np.testing.assert_allclose(
+        table["prob_above_benchmark"], stats.beta.sf(pooled, model.exact_.alpha, model.exact_.beta)
+    )
     assert curve["trials"].iloc[0] == 1 and curve["trials"].iloc[-1] == counts.trials.max()
     assert curve["trials"].is_monotonic_increasing
 
@@ -333,8 +338,23 @@ def data_csv(tmp_path_factory):
 
 
 def _fit_folder(data_csv, folder, model, engine, *extra):
-    argv = ["fit", str(data_csv), "--model", model, "--engine", engine, "--draws", "150",
-            "--chains", "2", "--seed", "4", "--out", str(folder), *extra]
+    argv = [
+        "fit",
+        str(data_csv),
+        "--model",
+        model,
+        "--engine",
+        engine,
+        "--draws",
+        "150",
+        "--chains",
+        "2",
+        "--seed",
+        "4",
+        "--out",
+        str(folder),
+        *extra,
+    ]
     return cli.main(argv)
 
 
@@ -351,8 +371,14 @@ def folders(data_csv, tmp_path_factory):
 @pytest.mark.parametrize("model", [m for m, _ in MODELS])
 def test_fit_writes_ranking_files(folders, model):
     folder = folders[model]
-    for name in ("ranks.csv", "pairwise.csv", "funnel.csv", "funnel_curve.csv", "targets.json",
-                 "trials_needed.csv"):
+    for name in (
+        "ranks.csv",
+        "pairwise.csv",
+        "funnel.csv",
+        "funnel_curve.csv",
+        "targets.json",
+        "trials_needed.csv",
+    ):
         assert (folder / name).exists(), name
     record = json.loads((folder / "run.json").read_text())
     assert record["ranking"]["top_k"] == 5 and record["settings"]["better"] == "higher"
@@ -365,8 +391,22 @@ def test_fit_writes_ranking_files(folders, model):
 @pytest.mark.parametrize("model", [m for m, _ in MODELS])
 def test_cli_rank_rewrites_folder(folders, model, capsys):
     folder = folders[model]
-    code = cli.main(["rank", str(folder), "--top", "3", "--better", "lower", "--target", "0.25",
-                     "--fdr", "0.05", "--level", "0.9"])
+    code = cli.main(
+        [
+            "rank",
+            str(folder),
+            "--top",
+            "3",
+            "--better",
+            "lower",
+            "--target",
+            "0.25",
+            "--fdr",
+            "0.05",
+            "--level",
+            "0.9",
+        ]
+    )
     out = capsys.readouterr().out
     assert code == 0
     assert "rank intervals overlap" in out
@@ -428,8 +468,9 @@ def test_cli_rank_without_target_says_so(data_csv, tmp_path, capsys):
 @pytest.mark.slow
 def test_cli_rank_on_mcmc_folder(data_csv, tmp_path, capsys):
     folder = tmp_path / "run"
-    code = _fit_folder(data_csv, folder, "beta-binomial", "mcmc", "--target", "0.2",
-                       "--tune", "300")
+    code = _fit_folder(
+        data_csv, folder, "beta-binomial", "mcmc", "--target", "0.2", "--tune", "300"
+    )
     assert code in (0, 3)
     assert cli.main(["rank", str(folder), "--top", "2"]) == code
     est = pd.read_csv(folder / "estimates.csv")
@@ -438,3 +479,25 @@ def test_cli_rank_on_mcmc_folder(data_csv, tmp_path, capsys):
     # sampled fit: probabilities from the draws, as in the model's summary
     np.testing.assert_allclose(est["prob_above_target"], (draws > 0.2).mean(axis=0))
     assert pd.read_csv(folder / "ranks.csv")["prob_best_k"].sum() == pytest.approx(2)
+
+
+def test_cli_rank_and_predict_on_not_final_run_exit_3(data_csv, tmp_path, capsys):
+    # a run whose convergence verdict failed: files are written, nothing is final, exit 3
+    folder = tmp_path / "run"
+    assert _fit_folder(data_csv, folder, "beta-binomial", "exact", "--target", "0.2") == 0
+    record = json.loads((folder / "run.json").read_text())
+    (folder / "run.json").write_text(json.dumps({**record, "final": False}))
+    assert cli.main(["rank", str(folder), "--top", "2"]) == 3
+    assert "NOT FINAL" in capsys.readouterr().out
+    assert pd.read_csv(folder / "ranks.csv")["prob_best_k"].sum() == pytest.approx(2)
+    assert cli.main(["predict", str(folder), "--trials", "10"]) == 3
+    assert (folder / "predictions.csv").exists()
+
+
+@pytest.mark.parametrize("option, value", [("--top", "-1"), ("--better", "best"), ("--fdr", "0")])
+def test_cli_fit_bad_ranking_option_one_error_line(data_csv, tmp_path, capsys, option, value):
+    folder = tmp_path / "run"
+    assert _fit_folder(data_csv, folder, "no-pooling", "exact", option, value) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith(f"error: {option[2:]}=")
+    assert not folder.exists()  # checked before anything is fitted or written
