@@ -70,19 +70,27 @@ def write_csv(path: Path, table: pd.DataFrame) -> None:
     write_atomic(path, lambda p: table.to_csv(p, index=False, float_format="%.10g"))
 
 
-def replace_folder(out: Path, fill: Callable[[Path], None]) -> None:
-    """Fill a fresh sibling folder, then swap it in for ``out`` in two renames.
-
-    An existing folder is replaced only if it is a run folder (holds run.json) or empty.
-    """
+def check_replaceable(out: Path, *, marker: str = "run.json", kind: str = "run") -> None:
+    """DataError unless ``out`` is absent, empty, or a ``kind`` folder (holds ``marker``)."""
     out = Path(out)
     if out.exists():
         if not out.is_dir():
-            raise DataError(f"--out {str(out)!r} is a file; give a folder for the run.")
-        if any(out.iterdir()) and not (out / "run.json").exists():
+            raise DataError(f"--out {str(out)!r} is a file; give a folder for the {kind}.")
+        if any(out.iterdir()) and not (out / marker).exists():
             raise DataError(
-                f"--out {str(out)!r} exists and is not a run folder; choose a new folder."
+                f"--out {str(out)!r} exists and is not a {kind} folder; choose a new folder."
             )
+
+
+def replace_folder(
+    out: Path, fill: Callable[[Path], None], *, marker: str = "run.json", kind: str = "run"
+) -> None:
+    """Fill a fresh sibling folder, then swap it in for ``out`` in two renames.
+
+    An existing folder is replaced only if it is a ``kind`` folder (holds ``marker``) or empty.
+    """
+    out = Path(out)
+    check_replaceable(out, marker=marker, kind=kind)
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
     try:

@@ -31,6 +31,7 @@ from models import (
 from . import _io
 from .data import LoadedData, load_groups
 from .diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
+from .ppc import CheckSettings, attach_checks
 from . import ranking
 
 with warnings.catch_warnings():
@@ -137,8 +138,14 @@ def fit(
     retry: bool = False,
     thresholds: Thresholds | None = None,
     progress: bool | None = None,
+    checks: bool | CheckSettings = True,
 ) -> Run:
-    """Load, fit, summarise and diagnose: one run, not yet written anywhere."""
+    """Load, fit, summarise and diagnose: one run, not yet written anywhere.
+
+    ``checks`` (True, or a :class:`workbench.ppc.CheckSettings`) adds the posterior predictive
+    checks, leave-one-group-out predictive and LOO-PIT: ``documents["checks"]`` (checks.json),
+    ``tables["ppc_statistics"]`` and ``tables["group_checks"]``. False skips them.
+    """
     loaded = source if isinstance(source, LoadedData) else load_groups(
         source, group=group, successes=successes, trials=trials, outcome=outcome
     )
@@ -184,6 +191,8 @@ def fit(
               documents=documents, messages=messages)
     if verify:
         run.documents["verification"] = verify_run(run, progress=progress)
+    if checks is not False:
+        attach_checks(run, checks if isinstance(checks, CheckSettings) else None)
     ranking.add_to_run(run, top=rank_opts.top, better=rank_opts.better, fdr=rank_opts.fdr)
     run.seconds = time.perf_counter() - started
     if not diagnostics.ready:
@@ -394,14 +403,130 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
     return "\n".join(lines)
 
 
+# -- checks and comparison of run folders (workbench check / compare) -----------------------
+
+
+def _consistent(folder: RunFolder) -> RunFolder:
+    """The folder, or DataError when run.json and posterior.nc disagree about the data."""
+    from models import counts_of
+
+    said = (folder.record.get("input") or {}).get("fingerprint")
+    stored = attr(folder.idata, "data_fingerprint")
+    actual = counts_of(folder.idata).fingerprint()
+    if not said or said != stored or stored != actual:
+        raise DataError(
+            f"run folder {str(folder.path)!r} is inconsistent: run.json, posterior.nc and the"
+            f" counts inside it give data fingerprints {str(said)[:12]}, {str(stored)[:12]},"
+            f" {actual[:12]}; fit it again with 'workbench fit'."
+        )
+    return folder
+
+
+def check_folder(path: str | Path, settings: CheckSettings | None = None):
+    """Run the checks on a run folder and write checks.json, ppc_statistics.csv and
+    group_checks.csv into it (atomically). Returns ``(RunFolder, Checks)``."""
+    from .ppc import check_posterior, write_checks
+
+    folder = _consistent(open_run(path))
+    checks = check_posterior(folder.idata, settings)
+    write_checks(folder.path, checks)
+    return folder, checks
+
+
+def _labels(paths: list[Path]) -> list[str]:
+    names = [p.name or str(p) for p in paths]
+    return names if len(set(names)) == len(names) else [str(p) for p in paths]
+
+
+def compare_folders(paths, out: str | Path | None = None, settings: CheckSettings | None = None):
+    """Compare run folders fitted to the same data; write the comparison to ``out`` if given.
+
+    Runs are labelled by folder name (by path where names repeat).
+    """
+    from .comparison import compare_posteriors, write_comparison
+
+    paths = [Path(p) for p in paths]
+    seen: dict[Path, Path] = {}
+    for p in paths:
+        key = p.resolve()
+        if key in seen:
+            raise DataError(f"run folder {str(p)!r} is given twice; give each run once.")
+        seen[key] = p
+    folders = [_consistent(open_run(p)) for p in paths]
+    labels = _labels(paths)
+    comparison = compare_posteriors(
+        {lab: f.idata for lab, f in zip(labels, folders, strict=True)},
+        final={lab: f.final for lab, f in zip(labels, folders, strict=True)},
+        settings=settings,
+    )
+    if out is not None:
+        write_comparison(out, comparison)
+    return comparison
+
+
+def fit_and_compare(
+    source,
+    *,
+    models: list[str],
+    out: str | Path,
+    group: str = "group",
+    successes: str = "successes",
+    trials: str = "trials",
+    outcome: str | None = None,
+    settings: CheckSettings | None = None,
+    **options,
+):
+    """Fit several models to one data source and compare them; one folder holds it all.
+
+    ``out`` gets one run folder per model (named by the model) and the comparison files;
+    the whole folder is replaced in one move (an earlier comparison folder or an empty one).
+    ``options`` are :func:`fit`'s. Returns ``(runs by model, Comparison)``.
+    """
+    from .comparison import COMPARISON_FILE, compare_posteriors, write_comparison
+
+    models = list(models)
+    unknown = [m for m in models if m not in MODELS]
+    if unknown:
+        quoted = ", ".join(repr(m) for m in MODELS)
+        raise ParameterError(f"models {unknown!r}: each must be one of {quoted}.")
+    if len(set(models)) != len(models) or len(models) < 2:
+        raise ParameterError(
+            f"models={','.join(models)!r}: give at least two different models, e.g."
+            " beta-binomial,complete-pooling,no-pooling."
+        )
+    _io.check_replaceable(Path(out), marker=COMPARISON_FILE, kind="comparison")  # before fitting
+    loaded = (
+        source
+        if isinstance(source, LoadedData)
+        else load_groups(source, group=group, successes=successes, trials=trials, outcome=outcome)
+    )
+    runs = {m: fit(loaded, model=m, checks=settings or True, **options) for m in models}
+    comparison = compare_posteriors(
+        {m: r.idata for m, r in runs.items()},
+        final={m: r.ready for m, r in runs.items()},
+        settings=settings,
+    )
+
+    def fill(folder: Path) -> None:
+        for m, r in runs.items():
+            write_run(r, folder / m)
+        write_comparison(folder, comparison)
+
+    _io.replace_folder(Path(out), fill, marker=COMPARISON_FILE, kind="comparison")
+    return runs, comparison
+
+
 __all__ = [
     "DEFAULT_MODEL",
     "Run",
     "RunFolder",
     "SUMMARY_COLUMNS",
+    "check_folder",
+    "compare_folders",
     "demo_data_path",
     "estimates_table",
     "fit",
+    "fit_and_compare",
     "format_fit",
     "load_groups",
     "open_run",

@@ -14,6 +14,8 @@ from pathlib import Path
 from models import MODELS, ConvergenceWarning, WorkbenchError
 
 from . import api
+from .comparison import format_comparison
+from .ppc import CheckSettings, format_checks
 from . import predict, ranking
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
@@ -59,12 +61,19 @@ def _positive(text: str) -> float:
     return value
 
 
-def _add_model_options(p: argparse.ArgumentParser, *, model_default: str) -> None:
+def _add_model_options(
+    p: argparse.ArgumentParser, *, model_default: str, several: bool = False
+) -> None:
     g = p.add_argument_group("model")
-    g.add_argument("--model", default=model_default, choices=list(MODELS),
-                   help=f"which model to fit (default: {model_default}). beta-binomial pools"
-                        " partially; no-pooling treats each group alone; complete-pooling"
-                        " gives every group one shared rate")
+    if several:  # workbench compare --data: a comma-separated list instead of one model
+        g.add_argument("--models", type=_model_list, default=None, metavar="A,B,...",
+                       help="models to fit and compare, comma-separated (default:"
+                            f" {','.join(COMPARE_MODELS)})")
+    else:
+        g.add_argument("--model", default=model_default, choices=list(MODELS),
+                       help=f"which model to fit (default: {model_default}). beta-binomial pools"
+                            " partially; no-pooling treats each group alone; complete-pooling"
+                            " gives every group one shared rate")
     g.add_argument("--engine", default="auto", choices=["auto", "exact", "mcmc"],
                    help="how the posterior is computed: exact (quadrature / closed forms) or"
                         " mcmc (PyMC NUTS); auto picks exact wherever the model has it")
@@ -99,7 +108,10 @@ def _add_model_options(p: argparse.ArgumentParser, *, model_default: str) -> Non
     r.add_argument("--target", type=_rate, default=None,
                    help="a target rate: adds prob_above_target and the target flags")
     r.add_argument("--out", type=Path, default=None,
-                   help="run folder to write (replaced whole if it is an earlier run folder)")
+                   help="folder for one run folder per model and the comparison (default"
+                        " compare-<data file name>; replaced whole if it is an earlier one)"
+                   if several else
+                   "run folder to write (replaced whole if it is an earlier run folder)")
 
 
 def _fit_kwargs(args: argparse.Namespace) -> dict:
@@ -130,10 +142,12 @@ def _fit_and_write(source, args, out: Path, **columns) -> int:
         run = api.fit(source, **columns, **_fit_kwargs(args))
     api.write_run(run, out)
     print(api.format_fit(run, out))
+    if "checks" in run.documents:
+        print(format_checks(run.documents["checks"]))
     return EXIT_OK if run.ready else EXIT_NOT_READY
 
 
-def cmd_fit(args: argparse.Namespace) -> int:
+def _column_kwargs(args: argparse.Namespace) -> dict:
     if args.outcome is not None and (args.successes or args.trials):
         raise WorkbenchError(
             "give either --outcome (one row per trial) or --successes/--trials (counts), not both."
@@ -144,6 +158,11 @@ def cmd_fit(args: argparse.Namespace) -> int:
     else:
         columns["successes"] = args.successes or "successes"
         columns["trials"] = args.trials or "trials"
+    return columns
+
+
+def cmd_fit(args: argparse.Namespace) -> int:
+    columns = _column_kwargs(args)
     out = args.out or Path(f"run-{Path(args.data).stem}")
     return _fit_and_write(args.data, args, out, **columns)
 
@@ -236,6 +255,132 @@ def _add_predict_parser(sub) -> None:
     p.set_defaults(func=cmd_predict)
 
 
+def _add_column_options(p: argparse.ArgumentParser) -> None:
+    c = p.add_argument_group("columns")
+    c.add_argument("--group", default="group", help="column naming the group (default: group)")
+    c.add_argument("--successes", default=None,
+                   help="column of success counts (default: successes)")
+    c.add_argument("--trials", default=None, help="column of trial counts (default: trials)")
+    c.add_argument("--outcome", default=None,
+                   help="instead of counts: column of one outcome per row (1/0, true/false,"
+                        " yes/no); rows are counted per group")
+
+
+# -- check and compare (issue 4) -------------------------------------------------------------
+
+#: Models fitted by ``workbench compare --data`` when --models is not given.
+COMPARE_MODELS = ("beta-binomial", "complete-pooling", "no-pooling")
+
+
+def _model_list(text: str) -> list[str]:
+    models = [m.strip() for m in text.split(",") if m.strip()]
+    unknown = [m for m in models if m not in MODELS]
+    if unknown:
+        raise argparse.ArgumentTypeError(f"{', '.join(unknown)} not among {', '.join(MODELS)}")
+    if len(models) < 2 or len(set(models)) != len(models):
+        raise argparse.ArgumentTypeError(f"{text!r}: give at least two different models")
+    return models
+
+
+def _add_check_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("checks")
+    g.add_argument("--replicates", type=_positive_int, default=1000,
+                   help="posterior draws used for replicated data sets, thinned evenly"
+                        " (default 1000)")
+    g.add_argument("--p-bounds", nargs=2, type=_rate, metavar=("LOW", "HIGH"),
+                   default=(0.01, 0.99),
+                   help="a posterior predictive p-value below LOW or above HIGH reads misfit"
+                        " (default 0.01 0.99)")
+    g.add_argument("--refit-limit", type=_count, default=50,
+                   help="most groups with high Pareto k given their exact leave-one-group-out"
+                        " value instead of PSIS, worst first (default 50)")
+
+
+def _check_settings(args: argparse.Namespace) -> CheckSettings:
+    low, high = args.p_bounds
+    return CheckSettings(draws=args.replicates, lower=low, upper=high,
+                         refit_limit=args.refit_limit).validate()
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    folder, checks = api.check_folder(args.run, _check_settings(args))
+    print(format_checks(checks))
+    print(f"wrote {folder.path}/: checks.json, ppc_statistics.csv, group_checks.csv")
+    if not folder.final:
+        print("note: this run's convergence verdict is not-ready; the checks are provisional.")
+    return EXIT_OK
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    settings = _check_settings(args)
+    if args.data is None:
+        if len(args.runs) < 2:
+            raise WorkbenchError(
+                f"compare needs two or more run folders (got {len(args.runs)}), or --data FILE"
+                " to fit several models at once."
+            )
+        if args.models is not None:
+            raise WorkbenchError("--models goes with --data; run folders are already fitted.")
+        out = args.out or Path("comparison")
+        comparison = api.compare_folders(args.runs, out, settings)
+        print(format_comparison(comparison))
+        print(f"wrote {out}/: comparison.csv, comparison_pointwise.csv, comparison.json")
+        return EXIT_OK
+    if args.runs:
+        raise WorkbenchError(
+            "give either run folders or --data FILE, not both: --data fits the models afresh."
+        )
+    options = _fit_kwargs(argparse.Namespace(**vars(args), model=None))
+    options.pop("model")
+    out = args.out or Path(f"compare-{Path(args.data).stem}")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)  # each verdict is printed instead
+        runs, comparison = api.fit_and_compare(
+            args.data, models=args.models or list(COMPARE_MODELS), out=out, settings=settings,
+            **_column_kwargs(args), **options,
+        )
+    for name, run in runs.items():
+        checks = run.documents.get("checks", {})
+        misfit = ", ".join(checks.get("misfit_statistics", [])) or "none"
+        print(f"{name}: convergence {run.diagnostics.verdict}, checks"
+              f" {checks.get('verdict', '-')} (misfit: {misfit}), {run.seconds:.1f} s")
+    print(format_comparison(comparison))
+    print(f"wrote {out}/: {', '.join(runs)} run folders, comparison.csv,"
+          " comparison_pointwise.csv, comparison.json")
+    return EXIT_OK if all(r.ready for r in runs.values()) else EXIT_NOT_READY
+
+
+def _add_check_parser(sub) -> None:
+    p = sub.add_parser("check", help="posterior predictive checks and held-out-group predictions"
+                                     " of a run folder",
+                       description="Replicate the data from the posterior of a run folder, test"
+                                   " five statistics with posterior predictive p-values, and"
+                                   " predict each group left out (PSIS-LOO, Pareto k, LOO-PIT);"
+                                   " writes checks.json, ppc_statistics.csv and group_checks.csv"
+                                   " into the folder.")
+    p.add_argument("run", type=Path, help="a run folder written by 'workbench fit'")
+    _add_check_options(p)
+    p.set_defaults(func=cmd_check)
+
+
+def _add_compare_parser(sub) -> None:
+    p = sub.add_parser("compare", help="compare models by how well they predict held-out groups",
+                       description="Compare run folders fitted to the same data (workbench"
+                                   " compare RUN RUN ...), or fit several models to one file and"
+                                   " compare them (workbench compare --data FILE --models"
+                                   " A,B,...). Writes comparison.csv, comparison_pointwise.csv and"
+                                   " comparison.json.")
+    p.add_argument("runs", nargs="*", type=Path, metavar="RUN",
+                   help="run folders to compare (or none, with --data)")
+    p.add_argument("--data", default=None,
+                   help="CSV, TSV or Parquet file to fit every model of --models to")
+    _add_column_options(p)
+    _add_model_options(p, model_default=api.DEFAULT_MODEL, several=True)
+    _add_ranking_options(p)
+    _add_check_options(p)
+    p.set_defaults(func=cmd_compare)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="workbench",
@@ -251,14 +396,7 @@ def build_parser() -> argparse.ArgumentParser:
                                    " run folder: estimates.csv, population.csv, diagnostics.json,"
                                    " posterior.nc, run.json.")
     p.add_argument("data", help="CSV, TSV or Parquet file: one row per group (or per trial)")
-    c = p.add_argument_group("columns")
-    c.add_argument("--group", default="group", help="column naming the group (default: group)")
-    c.add_argument("--successes", default=None,
-                   help="column of success counts (default: successes)")
-    c.add_argument("--trials", default=None, help="column of trial counts (default: trials)")
-    c.add_argument("--outcome", default=None,
-                   help="instead of counts: column of one outcome per row (1/0, true/false,"
-                        " yes/no); rows are counted per group")
+    _add_column_options(p)
     _add_model_options(p, model_default=api.DEFAULT_MODEL)
     _add_ranking_options(p)
     p.set_defaults(func=cmd_fit)
@@ -271,6 +409,8 @@ def build_parser() -> argparse.ArgumentParser:
     d.set_defaults(func=cmd_demo)
     _add_rank_parser(sub)
     _add_predict_parser(sub)
+    _add_check_parser(sub)
+    _add_compare_parser(sub)
     return parser
 
 

@@ -1,0 +1,576 @@
+"""Posterior predictive checks, leave-one-group-out comparison and their command line.
+
+All data are simulated here. Fast tests use the exact engines; the one MCMC test is ``slow``.
+Each check names its source in a comment or in its name.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from models import DataError, GroupCounts, ParameterError, make_model
+from models._grid import HyperPrior, fit_grid
+from models._posterior import make_idata
+from workbench import api, cli, ppc
+from workbench.comparison import (
+    COLUMNS,
+    COMPARISON_FILE,
+    COMPARISON_TABLE,
+    POINTWISE_TABLE,
+    compare_posteriors,
+    format_comparison,
+    write_comparison,
+)
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore", FutureWarning)
+    import arviz as az
+
+MODELS3 = ("beta-binomial", "complete-pooling", "no-pooling")
+
+
+def simulate(seed: int, sd: float, groups: int = 40, mean: float = 0.2) -> GroupCounts:
+    """Rates from a Beta with the given between-group sd (sd=0: one rate), trials 50-500."""
+    rng = np.random.default_rng(seed)
+    trials = rng.integers(50, 501, groups)
+    if sd > 0:
+        kappa = mean * (1 - mean) / sd**2 - 1
+        rates = rng.beta(mean * kappa, (1 - mean) * kappa, groups)
+    else:
+        rates = np.full(groups, mean)
+    names = [f"shop-{i:02d}" for i in range(groups)]
+    return GroupCounts(names, rng.binomial(trials, rates), trials)
+
+
+def fit_all(data: GroupCounts) -> dict:
+    return {m: make_model(m, random_seed=11).fit(data).idata_ for m in MODELS3}
+
+
+@pytest.fixture(scope="module")
+def spread():
+    """Over-dispersed: between-group sd 0.08 around 0.2."""
+    data = simulate(3, 0.08)
+    return data, fit_all(data)
+
+
+@pytest.fixture(scope="module")
+def alike():
+    """Homogeneous: every group's rate is 0.2."""
+    data = simulate(3, 0.0)
+    posts = {m: make_model(m, random_seed=11).fit(data).idata_
+             for m in ("beta-binomial", "complete-pooling")}
+    return data, posts
+
+
+@pytest.fixture(scope="module")
+def spread_checks(spread):
+    _, posts = spread
+    return {m: ppc.check_posterior(posts[m]) for m in MODELS3}
+
+
+def _p(checks: ppc.Checks, statistic: str) -> float:
+    return float(checks.statistics.set_index("statistic").loc[statistic, "p_value"])
+
+
+# -- done-when: posterior predictive p-values ------------------------------------------------
+
+
+def test_sd_of_rates_misfits_complete_pooling_not_beta_binomial(spread_checks):
+    # Gelman, Meng & Stern (1996) posterior predictive p-value; binomial noise alone cannot
+    # produce the simulated between-group sd of 0.08, a shared rate must fail this statistic.
+    cp = spread_checks["complete-pooling"]
+    bb = spread_checks["beta-binomial"]
+    p_cp, p_bb = _p(cp, "sd_rate"), _p(bb, "sd_rate")
+    assert p_cp < 0.01 or p_cp > 0.99
+    assert 0.01 <= p_bb <= 0.99
+    row = cp.statistics.set_index("statistic").loc["sd_rate"]
+    assert row["verdict"] == ppc.MISFIT and cp.verdict == ppc.MISFIT
+    assert bb.statistics.set_index("statistic").loc["sd_rate", "verdict"] == ppc.CONSISTENT
+    # under a shared rate the replicated sd is binomial noise: about sqrt(p(1-p)/n) (common
+    # practice: the Binomial variance), far below the observed 0.08
+    groups = cp.groups
+    p = groups["successes"].sum() / groups["trials"].sum()
+    noise = np.sqrt(np.mean(p * (1 - p) / groups["trials"]))
+    assert abs(row["replicated_mean"] - noise) < 0.25 * noise
+    assert row["observed"] > 2 * row["replicated_upper"]
+
+
+def test_observed_statistics_are_the_data_own(spread, spread_checks):
+    # recomputed directly from the counts with numpy (common practice: ddof=1 sample sd)
+    data, _ = spread
+    rate = data.successes / data.trials
+    doc = spread_checks["beta-binomial"].to_dict()
+    obs = {r["statistic"]: r["observed"] for r in doc["statistics"]}
+    assert obs["sd_rate"] == pytest.approx(np.std(rate, ddof=1), rel=1e-12)
+    assert obs["max_rate"] == pytest.approx(rate.max())
+    assert obs["min_rate"] == pytest.approx(rate.min())
+    assert obs["zero_success_groups"] == np.sum(data.successes == 0)
+
+
+def test_mean_replicated_chi_square_is_number_of_groups(spread_checks):
+    # E[(y - n theta)^2] = n theta (1 - theta) for a Binomial (common practice), so with the
+    # replicate drawn from the same theta the discrepancy averages to the number of groups.
+    for model in ("beta-binomial", "no-pooling"):
+        reps = spread_checks[model].replicates
+        chi = reps.loc[reps["statistic"] == "chi_square", "replicated"].to_numpy()
+        groups = spread_checks[model].info["groups_with_trials"]
+        assert abs(chi.mean() - groups) < 4 * chi.std() / np.sqrt(len(chi))
+
+
+def test_mid_p_gives_one_half_when_every_replicate_ties(spread_checks):
+    # mid-p (Lancaster 1961): P(T_rep > T_obs) + 0.5 P(T_rep = T_obs). With trials >= 50 and
+    # rates near 0.2 no group is ever without a success, observed or replicated.
+    row = spread_checks["beta-binomial"].statistics.set_index("statistic")
+    zero = row.loc["zero_success_groups"]
+    assert zero["observed"] == 0 and zero["replicated_upper"] == 0
+    assert zero["p_value"] == 0.5 and zero["p_at_least"] == 1.0
+    assert zero["verdict"] == ppc.CONSISTENT
+
+
+def test_verdict_follows_configurable_bounds(spread):
+    _, posts = spread
+    narrow = ppc.CheckSettings(lower=0.45, upper=0.55, draws=300)
+    table = ppc.check_posterior(posts["beta-binomial"], narrow).statistics
+    p = table["p_value"].to_numpy()
+    expected = np.where((p < 0.45) | (p > 0.55), ppc.MISFIT, ppc.CONSISTENT)
+    assert (table["verdict"].to_numpy() == expected).all()
+    assert (table["replicates"] <= 300).all()
+    with pytest.raises(ParameterError, match="lower=0.6"):
+        ppc.CheckSettings(lower=0.6, upper=0.9).validate()
+
+
+def test_chunked_statistics_match_direct_numpy():
+    # theta of exactly 0 or 1 makes every replicate deterministic (y_rep = 0 or n), so the
+    # chunked running sums can be checked against numpy on the full replicated matrix.
+    rng = np.random.default_rng(4)
+    groups, draws = 9, 60
+    trials = rng.integers(1, 30, groups)
+    data = GroupCounts([f"m{i}" for i in range(groups)], rng.binomial(trials, 0.4), trials)
+    theta = rng.integers(0, 2, size=(1, draws, groups)).astype(float)
+    idata = make_idata(data, theta, theta_new=np.full(draws, 0.5), hyper={},
+                       attrs={"model": "no-pooling", "random_seed": 1})
+    y_rep = theta[0] * trials
+    rate = y_rep / trials
+    for cells in (1, 17, 10_000):
+        reps, _ = ppc.replicate_statistics(idata, ppc.CheckSettings(chunk_cells=cells),
+                                           np.random.default_rng(0))
+        got = reps.pivot(index="draw", columns="statistic", values="replicated")
+        np.testing.assert_allclose(got["sd_rate"], rate.std(axis=1, ddof=1), atol=1e-12)
+        np.testing.assert_allclose(got["max_rate"], rate.max(axis=1))
+        np.testing.assert_allclose(got["min_rate"], rate.min(axis=1))
+        np.testing.assert_allclose(got["zero_success_groups"], (y_rep == 0).sum(axis=1))
+
+
+def test_thinning_keeps_at_most_the_asked_draws():
+    assert len(ppc.thinned_draws(4000, 1000)) == 1000
+    assert ppc.thinned_draws(4000, 1000)[[0, -1]].tolist() == [0, 3999]
+    assert ppc.thinned_draws(300, 1000).tolist() == list(range(300))
+
+
+# -- done-when: comparison ---------------------------------------------------------------
+
+
+def test_compare_prefers_beta_binomial_beyond_two_se_on_overdispersed(spread):
+    _, posts = spread
+    comparison = compare_posteriors(posts)
+    t = comparison.table.set_index("run")
+    assert comparison.best == "beta-binomial"
+    cp = t.loc["complete-pooling"]
+    assert cp["elpd_difference"] < -2 * cp["difference_se"]
+    assert cp["preference"] == "clear"
+    assert any("beta-binomial predicts held-out groups better than complete-pooling" in r
+               for r in comparison.readings)
+    assert list(comparison.table.columns) == COLUMNS
+
+
+def test_homogeneous_data_within_two_se(alike):
+    _, posts = alike
+    comparison = compare_posteriors(posts)
+    other = comparison.table.iloc[1]
+    assert abs(other["elpd_difference"]) <= 2 * other["difference_se"]
+    assert other["preference"] == "within-two-se"
+    assert "no clear preference" in comparison.readings[0]
+
+
+def test_tiny_difference_reads_as_no_preference():
+    # Homogeneous data where complete pooling wins by a fraction of a nat in nearly every
+    # group: the standard error of the difference is tinier still. Differences under 4 are
+    # read as no clear preference (Sivula et al. 2020).
+    data = simulate(4, 0.0)
+    posts = {m: make_model(m, random_seed=11).fit(data).idata_
+             for m in ("beta-binomial", "complete-pooling")}
+    comparison = compare_posteriors(posts)
+    other = comparison.table.iloc[1]
+    assert abs(other["elpd_difference"]) < 4
+    assert abs(other["elpd_difference"]) > 2 * other["difference_se"]
+    assert other["preference"] == "small-difference"
+    assert "no clear preference" in comparison.readings[0]
+
+
+def test_difference_se_is_the_paired_formula(spread):
+    # Vehtari, Gelman & Gabry (2017), eq. 24: se = sqrt(G var(d_j)); az.compare uses the same
+    # formula, so with no exact replacements (refit_limit=0) both must agree.
+    _, posts = spread
+    pair = {m: posts[m] for m in ("beta-binomial", "complete-pooling")}
+    psis_only = ppc.CheckSettings(refit_limit=0)
+    ours = compare_posteriors(pair, settings=psis_only).table.set_index("run")
+    ours = ours.loc["complete-pooling"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        # exact draws are independent: relative efficiency 1, as workbench uses
+        loos = {m: az.loo(idata, var_name="y_group", pointwise=True, reff=1.0)
+                for m, idata in pair.items()}
+        theirs = az.compare(loos, method="BB-pseudo-BMA", seed=1)
+    assert ours["exact_groups"] == 0
+    assert ours["difference_se"] == pytest.approx(theirs.loc["complete-pooling", "dse"], rel=1e-6)
+    assert -ours["elpd_difference"] == pytest.approx(
+        theirs.loc["complete-pooling", "elpd_diff"], rel=1e-9
+    )
+
+
+# -- done-when: PSIS-LOO against values from outside the project -----------------------------
+
+
+def _importance_se(idata) -> np.ndarray:
+    """Monte Carlo se of log p(y_j | y_-j) from self-normalised PSIS weights (common practice:
+    the delta-method variance of a self-normalised importance sampling mean)."""
+    ll = idata.log_likelihood["y_group"].transpose("chain", "draw", "group").values
+    ll = ll.reshape(-1, ll.shape[-1]).T
+    log_w, _ = az.psislw(-ll, 1.0)
+    w, p = np.exp(log_w), np.exp(ll)
+    mean = (w * p).sum(axis=1)
+    return np.sqrt((w**2 * (p - mean[:, None]) ** 2).sum(axis=1)) / mean
+
+
+def test_no_pooling_loo_is_prior_predictive_scipy_betabinom(spread):
+    # A no-pooling group left out has only its Beta(a, b) prior: its predictive is
+    # scipy.stats.betabinom(n, a, b), log pmf and cdf.
+    data, posts = spread
+    loo = ppc.leave_one_group_out(posts["no-pooling"])
+    y, n = data.successes, data.trials
+    np.testing.assert_allclose(loo.table["elpd_loo"], stats.betabinom.logpmf(y, n, 1, 1),
+                               rtol=1e-10)
+    np.testing.assert_allclose(loo.table["loo_pit_upper"], stats.betabinom.cdf(y, n, 1, 1),
+                               rtol=1e-9)
+    np.testing.assert_allclose(loo.table["loo_pit_lower"], stats.betabinom.cdf(y - 1, n, 1, 1),
+                               rtol=1e-9, atol=1e-14)
+    assert (loo.table["loo_method"] == "exact").all()
+    assert loo.table["pareto_k"].isna().all() and not loo.high_k
+    assert loo.elpd_loo == pytest.approx(stats.betabinom.logpmf(y, n, 1, 1).sum(), rel=1e-12)
+
+
+def test_complete_pooling_exact_matches_scipy_and_psis(spread):
+    # Conjugacy: leaving group j out of a shared Beta(1, 1) rate gives
+    # betabinom(n_j, 1 + sum y_-j, 1 + sum f_-j) (scipy.stats.betabinom).
+    data, posts = spread
+    idata = posts["complete-pooling"]
+    exact = ppc.exact_leave_one_out(idata, np.arange(data.n_groups))
+    y, n = data.successes, data.trials
+    a = 1 + y.sum() - y
+    b = 1 + (n - y).sum() - (n - y)
+    np.testing.assert_allclose(exact["elpd_exact"], stats.betabinom.logpmf(y, n, a, b),
+                               rtol=1e-10)
+    np.testing.assert_allclose(exact["cdf_at"], stats.betabinom.cdf(y, n, a, b), rtol=1e-8)
+    loo = ppc.leave_one_group_out(idata)
+    low = loo.table["pareto_k"].to_numpy() < 0.5
+    gap = np.abs(exact["elpd_exact"].to_numpy() - loo.table["elpd_psis"].to_numpy())
+    assert low.sum() >= 30
+    assert (gap[low] <= 4 * _importance_se(idata)[low] + 1e-9).all()
+
+
+def test_beta_binomial_exact_refit_agrees_with_psis_where_k_low(spread):
+    # The refit value is checked two ways: against PSIS (within 4 Monte Carlo se where k < 0.5)
+    # and against the ratio of marginal likelihoods p(y) / p(y_-j) of two grid fits.
+    data, posts = spread
+    idata = posts["beta-binomial"]
+    loo = ppc.leave_one_group_out(idata)
+    k = loo.table["pareto_k"].to_numpy()
+    picks = np.flatnonzero(k < 0.5)[[0, 20]]
+    exact = ppc.exact_leave_one_out(idata, picks)["elpd_exact"].to_numpy()
+    se = _importance_se(idata)[picks]
+    psis = loo.table["elpd_psis"].to_numpy()[picks]
+    assert (np.abs(exact - psis) <= 4 * se + 1e-4).all()
+    prior = HyperPrior()
+    whole = fit_grid(data.successes, data.trials, prior).log_marginal_likelihood
+    keep = np.ones(data.n_groups, dtype=bool)
+    keep[picks[0]] = False
+    rest = fit_grid(data.successes[keep], data.trials[keep], prior).log_marginal_likelihood
+    assert exact[0] == pytest.approx(whole - rest, abs=1e-3)
+
+
+def test_high_k_group_is_named_and_refitted_exactly():
+    # One group far from the others (150 of 200 among rates near 0.2): leaving it out moves
+    # the hyper-posterior a lot, PSIS breaks down (k > 0.7) and is optimistic.
+    rng = np.random.default_rng(5)
+    trials = np.full(30, 200)
+    successes = rng.binomial(trials, 0.2)
+    successes[0] = 150
+    data = GroupCounts([f"site-{i}" for i in range(30)], successes, trials)
+    idata = make_model("beta-binomial", random_seed=2).fit(data).idata_
+    checks = ppc.check_posterior(idata)
+    loo = checks.loo
+    row = loo.table.iloc[0]
+    assert loo.high_k == ["site-0"] and row["pareto_k"] > loo.good_k
+    assert row["loo_method"] == "exact" and row["elpd_loo"] == row["elpd_exact"]
+    assert row["elpd_exact"] < row["elpd_psis"] - 1  # PSIS was optimistic
+    assert loo.elpd_loo == pytest.approx(loo.table["elpd_loo"].sum())
+    assert loo.unresolved == []
+    none = ppc.leave_one_group_out(idata, ppc.CheckSettings(refit_limit=0))
+    assert none.unresolved == ["site-0"] and "refit_limit=0" in none.notes[0]
+    text = ppc.format_checks(checks)
+    assert "site-0" in text and "exact" in text
+
+
+def test_group_integrated_likelihood_is_the_one_psis_can_use(spread):
+    # One row per group: leaving a row out leaves a group out. On the conditional likelihood
+    # most Pareto k exceed 0.7; on the group-integrated one none do (common practice for
+    # hierarchical models; the reason checks use y_group).
+    _, posts = spread
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cond = az.loo(posts["beta-binomial"], var_name="y", pointwise=True, reff=1.0)
+    assert np.mean(cond.pareto_k.values > 0.7) > 0.5
+    assert not ppc.leave_one_group_out(posts["beta-binomial"]).high_k
+
+
+def test_good_k_matches_arviz():
+    # az.loo reports the same threshold, min(1 - 1/log10(S), 0.7)
+    ll = np.random.default_rng(0).normal(size=(1, 100, 3))
+    idata = az.from_dict(log_likelihood={"y": ll})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert ppc.good_k_threshold(100) == pytest.approx(az.loo(idata, reff=1.0).good_k)
+    assert ppc.good_k_threshold(4000) == 0.7
+
+
+def test_loo_pit_calibrated_for_beta_binomial_not_complete_pooling(spread_checks):
+    # randomised PIT for counts (Czado, Gneiting & Held 2009); uniformity by scipy.stats.kstest
+    assert spread_checks["beta-binomial"].calibration["verdict"] == "calibrated"
+    cp = spread_checks["complete-pooling"].calibration
+    assert cp["verdict"] == "miscalibrated"
+    assert cp["share_below_0.05"] + cp["share_above_0.95"] > 0.3  # U-shaped: too narrow
+    pit = spread_checks["beta-binomial"].groups
+    assert (pit["loo_pit_lower"] <= pit["loo_pit"]).all()
+    assert (pit["loo_pit"] <= pit["loo_pit_upper"]).all()
+
+
+def test_groups_without_trials_are_left_out():
+    data = GroupCounts(["a", "b", "c", "d", "e", "f"], [3, 0, 5, 2, 9, 4], [10, 0, 12, 8, 20, 9])
+    idata = make_model("beta-binomial", random_seed=3).fit(data).idata_
+    checks = ppc.check_posterior(idata)
+    assert checks.loo.groups == 5 and "b" not in checks.groups["group"].tolist()
+    assert checks.info["groups_with_trials"] == 5
+
+
+def test_single_group_fit_still_gets_its_checks():
+    # nothing is left to refit when the only group is left out: PSIS stays, and says so
+    run = api.fit(pd.DataFrame({"group": ["a"], "successes": [3], "trials": [10]}), seed=1)
+    loo = run.documents["checks"]["loo"]
+    assert loo["groups"] == 1 and loo["unresolved_groups"] == ["a"]
+    assert run.documents["checks"]["loo_pit"]["verdict"] == ppc.NOT_COMPUTED
+
+
+# -- files, atomic writes, fit integration --------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def folders(tmp_path_factory):
+    root = tmp_path_factory.mktemp("runs")
+    data = simulate(3, 0.08).to_frame()
+    csv = root / "spread.csv"
+    data.to_csv(csv, index=False)
+    other = simulate(8, 0.08).to_frame()
+    other_csv = root / "other.csv"
+    other.to_csv(other_csv, index=False)
+    out = {}
+    for name, model, source in (("bb", "beta-binomial", csv), ("cp", "complete-pooling", csv),
+                                ("elsewhere", "complete-pooling", other_csv)):
+        run = api.fit(source, model=model, seed=5)
+        api.write_run(run, root / name)
+        out[name] = root / name
+    out["csv"] = csv
+    return out
+
+
+def test_fit_records_checks_and_writes_them(folders):
+    folder = folders["bb"]
+    doc = json.loads((folder / ppc.CHECKS_FILE).read_text())
+    assert doc["verdict"] == ppc.CONSISTENT and doc["model"] == "beta-binomial"
+    assert {r["statistic"] for r in doc["statistics"]} == set(ppc.STATISTICS)
+    reps = pd.read_csv(folder / ppc.REPLICATES_FILE)
+    assert list(reps.columns) == ["statistic", "draw", "observed", "replicated"]
+    assert reps.groupby("statistic").size().max() <= 1000
+    groups = pd.read_csv(folder / ppc.GROUP_CHECKS_FILE)
+    assert list(groups.columns) == ppc.GROUP_COLUMNS
+    record = json.loads((folder / "run.json").read_text())
+    assert {ppc.CHECKS_FILE, ppc.REPLICATES_FILE, ppc.GROUP_CHECKS_FILE} <= set(record["files"])
+
+
+def test_checks_and_comparison_written_atomically(folders, tmp_path, spread, monkeypatch):
+    # An interrupted write leaves the earlier file whole and no partial file behind.
+    target = tmp_path / "run"
+    target.mkdir()
+    (target / ppc.CHECKS_FILE).write_text('{"old": true}\n')
+    _, posts = spread
+    checks = ppc.check_posterior(posts["beta-binomial"], ppc.CheckSettings(draws=50))
+    comparison = compare_posteriors({m: posts[m] for m in ("beta-binomial", "no-pooling")})
+    original = Path.write_text
+
+    def half_then_fail(self, text, *args, **kwargs):
+        original(self, text[: len(text) // 2], *args, **kwargs)
+        raise OSError("disk full")
+
+    monkeypatch.setattr(Path, "write_text", half_then_fail)
+    with pytest.raises(OSError):
+        ppc.write_checks(target, checks)
+    with pytest.raises(OSError):
+        write_comparison(target, comparison)
+    monkeypatch.undo()
+    assert json.loads((target / ppc.CHECKS_FILE).read_text()) == {"old": True}
+    assert not (target / COMPARISON_FILE).exists()
+    assert not [p for p in target.iterdir() if p.name.endswith(".part")]
+    ppc.write_checks(target, checks)
+    write_comparison(target, comparison)
+    assert json.loads((target / ppc.CHECKS_FILE).read_text())["verdict"] == checks.verdict
+    assert len(pd.read_csv(target / COMPARISON_TABLE)) == 2
+    assert len(pd.read_csv(target / POINTWISE_TABLE)) == 2 * 40
+
+
+def test_format_functions_are_short_and_say_the_verdict(spread, spread_checks):
+    text = ppc.format_checks(spread_checks["complete-pooling"])
+    assert text.startswith("checks: MISFIT") and "sd of rates" in text
+    assert len(text.splitlines()) <= 12
+    _, posts = spread
+    summary = format_comparison(compare_posteriors(posts))
+    assert "1  beta-binomial" in summary and "standard errors" in summary
+    assert len(summary.splitlines()) <= 12
+
+
+# -- command line -------------------------------------------------------------------------
+
+
+def _one_error_line(capsys) -> str:
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: ")
+    return err[0]
+
+
+def test_cli_check_writes_and_prints(folders, capsys):
+    stamp = (folders["cp"] / ppc.CHECKS_FILE).stat().st_mtime_ns
+    assert cli.main(["check", str(folders["cp"]), "--replicates", "200"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("checks: MISFIT") and "wrote" in out
+    doc = json.loads((folders["cp"] / ppc.CHECKS_FILE).read_text())
+    assert doc["replicated_draws"] == 200
+    assert (folders["cp"] / ppc.CHECKS_FILE).stat().st_mtime_ns >= stamp
+
+
+def test_cli_compare_two_folders(folders, tmp_path, capsys):
+    out = tmp_path / "cmp"
+    assert cli.main(["compare", str(folders["bb"]), str(folders["cp"]), "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "bb predicts held-out groups better than cp" in text
+    doc = json.loads((out / COMPARISON_FILE).read_text())
+    assert doc["best"] == "bb" and len(doc["models"]) == 2
+    assert pd.read_csv(out / COMPARISON_TABLE)["run"].tolist() == ["bb", "cp"]
+
+
+def test_cli_compare_fits_several_models(folders, tmp_path, capsys):
+    out = tmp_path / "three"
+    argv = ["compare", "--data", str(folders["csv"]), "--models",
+            "beta-binomial,complete-pooling", "--seed", "3", "--out", str(out)]
+    assert cli.main(argv) == 0
+    text = capsys.readouterr().out
+    assert "beta-binomial predicts held-out groups better than complete-pooling" in text
+    for model in ("beta-binomial", "complete-pooling"):
+        assert (out / model / "run.json").exists() and (out / model / ppc.CHECKS_FILE).exists()
+    assert (out / COMPARISON_FILE).exists()
+
+
+def test_comparison_folder_replaced_whole_only_if_it_is_one(tmp_path):
+    from workbench import _io
+
+    out = tmp_path / "cmp"
+    _io.replace_folder(out, lambda f: (f / COMPARISON_FILE).write_text("{}"),
+                       marker=COMPARISON_FILE, kind="comparison")
+    (out / "stale.csv").write_text("x\n")
+    _io.replace_folder(out, lambda f: (f / COMPARISON_FILE).write_text("{}"),
+                       marker=COMPARISON_FILE, kind="comparison")
+    assert sorted(p.name for p in out.iterdir()) == [COMPARISON_FILE]
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "notes.txt").write_text("keep")
+    with pytest.raises(DataError, match="not a comparison folder"):
+        _io.check_replaceable(tmp_path / "mine", marker=COMPARISON_FILE, kind="comparison")
+
+
+@pytest.mark.parametrize(
+    ("argv", "needle"),
+    [
+        (["check", "{tmp}"], "is not a run folder"),
+        (["compare", "{bb}", "{tmp}"], "is not a run folder"),
+        (["compare", "{bb}", "{elsewhere}"], "different data"),
+        (["compare", "{bb}"], "two or more run folders"),
+        (["compare", "{bb}", "{bb}"], "given twice"),
+        (["compare", "{bb}", "{cp}", "--data", "{csv}"], "not both"),
+        (["compare", "--data", "{csv}", "--out", "{bb}"], "not a comparison folder"),
+    ],
+)
+def test_cli_bad_input_is_one_error_line(folders, tmp_path, capsys, argv, needle):
+    names = {k: str(v) for k, v in folders.items()} | {"tmp": str(tmp_path)}
+    assert cli.main([a.format(**names) for a in argv]) == 2
+    assert needle in _one_error_line(capsys)
+
+
+def test_cli_inconsistent_run_folder(folders, tmp_path, capsys):
+    import shutil
+
+    copy = tmp_path / "edited"
+    shutil.copytree(folders["bb"], copy)
+    record = json.loads((copy / "run.json").read_text())
+    record["input"]["fingerprint"] = "0" * 64
+    (copy / "run.json").write_text(json.dumps(record))
+    assert cli.main(["check", str(copy)]) == 2
+    assert "inconsistent" in _one_error_line(capsys)
+
+
+# -- MCMC -----------------------------------------------------------------------------------
+
+
+@pytest.mark.slow
+def test_mcmc_loo_agrees_with_exact_engine(spread):
+    # Same model, two engines: PSIS-LOO from NUTS draws (ArviZ's relative efficiency) should
+    # match the exact engine's within a few tenths of a nat in total.
+    data, posts = spread
+    mcmc = make_model("beta-binomial", engine="mcmc", draws=1000, tune=1000, chains=2,
+                      random_seed=7, progress=False).fit(data).idata_
+    a = ppc.leave_one_group_out(mcmc)
+    b = ppc.leave_one_group_out(posts["beta-binomial"])
+    assert not a.high_k
+    assert a.elpd_loo == pytest.approx(b.elpd_loo, abs=0.5)
+    comparison = compare_posteriors({"mcmc": mcmc, "exact": posts["beta-binomial"]})
+    assert comparison.table.iloc[1]["preference"] in ("within-two-se", "small-difference")
+
+
+@pytest.mark.slow
+def test_logit_normal_is_checked_and_compared_on_held_out_groups(spread):
+    # Its y_group integrates the group effect out (adaptive Gauss-Hermite), so PSIS-LOO over
+    # groups works; on data with real spread it must, like the beta-binomial model, beat
+    # complete pooling clearly, and sit close to the beta-binomial model.
+    data, posts = spread
+    idata = make_model("logit-normal", draws=1000, tune=1000, chains=2, random_seed=7,
+                       progress=False).fit(data).idata_
+    checks = ppc.check_posterior(idata)
+    assert checks.loo.available and checks.calibration["verdict"] == "calibrated"
+    assert checks.statistics.set_index("statistic").loc["sd_rate", "verdict"] == ppc.CONSISTENT
+    comparison = compare_posteriors({"logit-normal": idata, **posts})
+    t = comparison.table.set_index("run")
+    assert t.loc["complete-pooling", "preference"] == "clear"
+    gap = abs(t.loc["logit-normal", "elpd_loo"] - t.loc["beta-binomial", "elpd_loo"])
+    assert gap < 4
