@@ -516,6 +516,17 @@ def fit_and_compare(
     return runs, comparison
 
 
+def write_report(path: str | Path, **options):
+    """Write report.html and figures/*.png into a run folder; see :mod:`workbench.report`.
+
+    ``options`` are :func:`workbench.report.write_report`'s (``table_rows``). Returns its
+    :class:`workbench.report.Report` (path, figures, seconds, bytes).
+    """
+    from .report import write_report as _write_report
+
+    return _write_report(path, **options)
+
+
 __all__ = [
     "DEFAULT_MODEL",
     "Run",
@@ -531,5 +542,6 @@ __all__ = [
     "load_groups",
     "open_run",
     "verify_run",
+    "write_report",
     "write_run",
 ]

@@ -16,6 +16,7 @@ from models import MODELS, ConvergenceWarning, WorkbenchError
 from . import api
 from .comparison import format_comparison
 from .ppc import CheckSettings, format_checks
+from .report import format_report
 from . import predict, ranking
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
@@ -144,6 +145,8 @@ def _fit_and_write(source, args, out: Path, **columns) -> int:
     print(api.format_fit(run, out))
     if "checks" in run.documents:
         print(format_checks(run.documents["checks"]))
+    if getattr(args, "report", False):
+        print(format_report(api.write_report(out)))
     return EXIT_OK if run.ready else EXIT_NOT_READY
 
 
@@ -381,6 +384,28 @@ def _add_compare_parser(sub) -> None:
     p.set_defaults(func=cmd_compare)
 
 
+# -- report (issue 6) -------------------------------------------------------------------------
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    result = api.write_report(args.folder)
+    print(format_report(result))
+    if not result.final:
+        print("note: this run's convergence verdict is not-ready; the report says it is not final.")
+        return EXIT_NOT_READY
+    return EXIT_OK
+
+
+def _add_report_parser(sub) -> None:
+    p = sub.add_parser("report", help="write report.html (and figures/*.png) into a run folder",
+                       description="Write one self-contained HTML report of a run folder"
+                                   " (figures embedded; it loads nothing from the network) and the"
+                                   " figures as PNG files under figures/. Exits 3 when the run's"
+                                   " convergence verdict is not-ready.")
+    p.add_argument("folder", type=Path, help="a run folder written by 'workbench fit'")
+    p.set_defaults(func=cmd_report)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="workbench",
@@ -399,6 +424,8 @@ def build_parser() -> argparse.ArgumentParser:
     _add_column_options(p)
     _add_model_options(p, model_default=api.DEFAULT_MODEL)
     _add_ranking_options(p)
+    p.add_argument("--report", action="store_true",
+                   help="also write report.html (and figures/*.png) into the run folder")
     p.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("demo", help="fit the bundled invented demo data and write a run folder",
@@ -406,11 +433,12 @@ def build_parser() -> argparse.ArgumentParser:
                                    " a run folder (default ./demo-run).")
     _add_model_options(d, model_default=api.DEFAULT_MODEL)
     _add_ranking_options(d)
-    d.set_defaults(func=cmd_demo)
+    d.set_defaults(func=cmd_demo, report=True)  # the demo always writes its report
     _add_rank_parser(sub)
     _add_predict_parser(sub)
     _add_check_parser(sub)
     _add_compare_parser(sub)
+    _add_report_parser(sub)
     return parser
 
 
