@@ -396,12 +396,14 @@ class BetaBinomial(_Estimator):
                 "target_accept": float(self.target_accept),
                 "sampler": "pymc-nuts, collapsed (mu, log kappa)",
             }
-        a = mu[..., None] * kappa[..., None]
-        b = (1 - mu[..., None]) * kappa[..., None]
-        y = data.successes[None, None, :]
-        n = data.trials[None, None, :]
-        theta = rng.beta(a + y, b + n - y)
-        theta_new = rng.beta(a[..., 0], b[..., 0])
+        a = mu * kappa
+        b = (1 - mu) * kappa
+        y = data.successes[None, :]
+        f = (data.trials - data.successes)[None, :]
+        theta = np.empty((self.chains, self.draws, data.n_groups))
+        for c in range(self.chains):  # one chain at a time bounds the temporaries
+            theta[c] = rng.beta(a[c][:, None] + y, b[c][:, None] + f)
+        theta_new = rng.beta(a, b)
         sd = np.sqrt(mu * (1 - mu) / (kappa + 1))
         hyper = {"mu": mu, "kappa": kappa, "between_group_sd": sd}
         return theta, theta_new, hyper, extra, stats_

@@ -28,17 +28,17 @@ from models import (
     versions,
 )
 
-from . import _io
+from . import _io, ranking
 from .data import LoadedData, load_groups
 from .diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
 from .ppc import CheckSettings, attach_checks
-from . import ranking
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
     import arviz as az
 
 DEFAULT_MODEL = "beta-binomial"
+COVARIATE_MODELS = ("logit-normal",)
 ESTIMATE_FILE = "estimates.csv"
 POSTERIOR_FILE = "posterior.nc"
 RUN_FILE = "run.json"
@@ -90,7 +90,9 @@ class Run:
             "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
             "final": self.ready,
             "verdict": self.diagnostics.verdict,
-            "command": " ".join(sys.argv) if sys.argv and sys.argv[0].endswith("workbench") else None,
+            "command": " ".join(sys.argv)
+            if sys.argv and sys.argv[0].endswith("workbench")
+            else None,
             "settings": self.settings,
             "model": attr(self.idata, "model"),
             "engine": attr(self.idata, "engine"),
@@ -127,13 +129,15 @@ def fit(
     better: str = "higher",
     fdr: float = ranking.DEFAULT_FDR,
     seed: int | None = None,
-    draws: int = 1000,
+    draws: int | None = None,
     chains: int = 4,
     tune: int = 1000,
     target_accept: float = 0.9,
     beta_prior: tuple[float, float] = (1.0, 1.0),
     mu_prior: tuple[float, float] = (1.0, 1.0),
     kappa_prior: tuple[float, float] = (20.0, 3.0),
+    sigma_prior: float = 1.0,
+    covariates: tuple[str, ...] = (),
     verify: bool = False,
     retry: bool = False,
     thresholds: Thresholds | None = None,
@@ -146,12 +150,26 @@ def fit(
     checks, leave-one-group-out predictive and LOO-PIT: ``documents["checks"]`` (checks.json),
     ``tables["ppc_statistics"]`` and ``tables["group_checks"]``. False skips them.
     """
-    loaded = source if isinstance(source, LoadedData) else load_groups(
-        source, group=group, successes=successes, trials=trials, outcome=outcome
+    loaded = (
+        source
+        if isinstance(source, LoadedData)
+        else load_groups(
+            source,
+            group=group,
+            successes=successes,
+            trials=trials,
+            outcome=outcome,
+            covariates=tuple(covariates),
+        )
     )
     if model not in MODELS:
         quoted = ", ".join(repr(m) for m in MODELS)
         raise ParameterError(f"model={model!r} is not one of {quoted}.")
+    if loaded.counts.covariates is not None and model not in COVARIATE_MODELS:
+        raise ParameterError(
+            f"covariates are used only by {', '.join(COVARIATE_MODELS)}; add --model"
+            f" {COVARIATE_MODELS[0]} or drop --covariates."
+        )
     rank_opts = ranking.rank_options(top=top, better=better, fdr=fdr, level=level, target=target)
     settings = {
         "model": model,
@@ -169,6 +187,8 @@ def fit(
         "beta_prior": list(beta_prior),
         "mu_prior": list(mu_prior),
         "kappa_prior": list(kappa_prior),
+        "sigma_prior": sigma_prior,
+        "covariates": list(covariates),
         "verify": verify,
         "retry": retry,
     }
@@ -185,10 +205,19 @@ def fit(
             documents["retry"] = {"applied": said, "first_reasons": diagnostics.reasons}
             estimator = _fit_model(loaded, settings, progress)
             diagnostics = diagnose(estimator.idata_, thresholds)
+    settings["draws_per_chain"] = int(estimator.draws)
     estimates = estimator.summary(level, target=target)
     population = estimator.population(level)
-    run = Run(loaded, estimator, settings, estimates, population, diagnostics,
-              documents=documents, messages=messages)
+    run = Run(
+        loaded,
+        estimator,
+        settings,
+        estimates,
+        population,
+        diagnostics,
+        documents=documents,
+        messages=messages,
+    )
     if verify:
         run.documents["verification"] = verify_run(run, progress=progress)
     if checks is not False:
@@ -205,12 +234,33 @@ def fit(
     return run
 
 
+#: Most theta cells (draws x groups) an exact engine stores unless draws are asked for.
+EXACT_STORED_CELLS = 100_000_000
+
+
+def default_draws(settings: dict, groups: int) -> int:
+    """Draws per chain: as asked; else 1000, fewer for exact engines on very many groups.
+
+    Exact engines report means and intervals from closed forms, so their stored draws only
+    feed ranks and checks: they keep at most EXACT_STORED_CELLS values of theta (at least
+    100 per chain). 100,000 groups x 4 chains get 250 draws per chain.
+    """
+    if settings.get("draws") is not None:
+        return int(settings["draws"])
+    engines = MODELS[settings["model"]].engines
+    engine = engines[0] if settings["engine"] == "auto" else settings["engine"]
+    chains = int(settings["chains"])
+    if engine == "exact" and chains * 1000 * groups > EXACT_STORED_CELLS:
+        return max(100, EXACT_STORED_CELLS // (chains * groups))
+    return 1000
+
+
 def _fit_model(loaded: LoadedData, settings: dict, progress: bool | None):
     a, b = settings["beta_prior"]
     estimator = make_model(
         settings["model"],
         engine=settings["engine"],
-        draws=int(settings["draws"]),
+        draws=default_draws(settings, loaded.counts.n_groups),
         chains=int(settings["chains"]),
         tune=int(settings["tune"]),
         target_accept=float(settings["target_accept"]),
@@ -219,6 +269,7 @@ def _fit_model(loaded: LoadedData, settings: dict, progress: bool | None):
         b=float(b),
         mu_prior=tuple(settings["mu_prior"]),
         kappa_prior=tuple(settings["kappa_prior"]),
+        sigma_prior=float(settings.get("sigma_prior", 1.0)),
         progress=progress,
     )
     return estimator.fit(loaded.counts)
@@ -242,6 +293,11 @@ def verify_run(run: Run, *, progress: bool | None = None) -> dict:
         other = _fit_model(run.loaded, other_settings, progress)
         exact, sampled = (fitted, other) if used == "exact" else (other, fitted)
         what = f"{used} engine against the {others[0]} engine"
+    elif used == "mcmc":
+        # no second engine: an independent second run, agreement in combined MCSE units
+        other_settings = dict(run.settings, seed=int(attr(fitted.idata_, "random_seed")) + 1)
+        other = _fit_model(run.loaded, other_settings, progress)
+        return _agreement_of_two_runs(run, fitted, other, level)
     else:
         exact, sampled = fitted, fitted
         what = "closed-form posterior against the engine's own draws"
@@ -275,6 +331,44 @@ def verify_run(run: Run, *, progress: bool | None = None) -> dict:
     within = float(np.mean(np.abs(z) <= 4))
     return {
         "what": what,
+        "groups": int(len(table)),
+        "share_within_4_mcse": within,
+        "max_abs_z": float(np.max(np.abs(z))),
+        "max_abs_interval_difference": float(
+            np.max(np.abs(table[["lower_difference", "upper_difference"]].to_numpy()))
+        ),
+        "agree": within >= 0.99,
+    }
+
+
+def _agreement_of_two_runs(run: Run, first, second, level: float) -> dict:
+    """Two independent MCMC runs of one model: differences in combined-MCSE units."""
+    tables = []
+    for fitted in (first, second):
+        post = fitted.idata_.posterior
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            mcse = az.mcse(post[["theta"]], method="mean")["theta"].values
+        tables.append((fitted.summary(level), mcse))
+    (a, mcse_a), (b, mcse_b) = tables
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (a["posterior_mean"] - b["posterior_mean"]).to_numpy() / np.hypot(mcse_a, mcse_b)
+    z = np.where(np.isfinite(z), z, 0.0)
+    table = pd.DataFrame(
+        {
+            "group": a["group"],
+            "mean_reference": a["posterior_mean"],
+            "mean_sampled": b["posterior_mean"],
+            "mcse": np.hypot(mcse_a, mcse_b),
+            "z": z,
+            "lower_difference": b["lower"] - a["lower"],
+            "upper_difference": b["upper"] - a["upper"],
+        }
+    )
+    run.tables["verification"] = table
+    within = float(np.mean(np.abs(z) <= 4))
+    return {
+        "what": "two independent MCMC runs (no exact engine for this model)",
         "groups": int(len(table)),
         "share_within_4_mcse": within,
         "max_abs_z": float(np.max(np.abs(z))),
@@ -349,8 +443,9 @@ def open_run(path: str | Path) -> RunFolder:
         warnings.simplefilter("ignore")
         idata = az.from_netcdf(str(path / POSTERIOR_FILE), engine="h5netcdf")
     idata.load() if hasattr(idata, "load") else None
-    estimates = pd.read_csv(path / ESTIMATE_FILE, dtype={"group": str}, keep_default_na=False,
-                            na_values=[""])
+    estimates = pd.read_csv(
+        path / ESTIMATE_FILE, dtype={"group": str}, keep_default_na=False, na_values=[""]
+    )
     return RunFolder(path, idata, record, estimates)
 
 
@@ -380,7 +475,9 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
         lines.append("  no detectable between-group spread: the groups look alike.")
     est = run.estimates.sort_values("posterior_mean", ascending=False)
     show = est if len(est) <= 2 * rows else pd.concat([est.head(rows), est.tail(rows)])
-    lines.append(f"groups by posterior mean ({'all' if len(est) <= 2 * rows else 'top and bottom'}):")
+    lines.append(
+        f"groups by posterior mean ({'all' if len(est) <= 2 * rows else 'top and bottom'}):"
+    )
     width = min(max(len(str(g)) for g in show["group"]), 28)
     for r in show.itertuples():
         observed = "   -  " if np.isnan(r.observed_rate) else f"{r.observed_rate:6.3f}"
@@ -394,7 +491,8 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
         lines.append(
             f"verify: {ver['what']}: {ver['share_within_4_mcse']:.1%} of groups within 4 MCSE"
             f" (max |z| {ver['max_abs_z']:.2f}; largest interval-end difference"
-            f" {ver['max_abs_interval_difference']:.2g}) -> {'AGREE' if ver['agree'] else 'DISAGREE'}"
+            f" {ver['max_abs_interval_difference']:.2g})"
+            f" -> {'AGREE' if ver['agree'] else 'DISAGREE'}"
         )
     if run.documents.get("ranking"):
         lines.append(ranking.format_run(run))

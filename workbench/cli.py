@@ -13,11 +13,10 @@ from pathlib import Path
 
 from models import MODELS, ConvergenceWarning, WorkbenchError
 
-from . import api
+from . import api, predict, ranking
 from .comparison import format_comparison
 from .ppc import CheckSettings, format_checks
 from .report import format_report
-from . import predict, ranking
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
 
@@ -87,9 +86,14 @@ def _add_model_options(
                    default=(20.0, 3.0),
                    help="beta-binomial: LogNormal prior of the concentration, by its median and"
                         " log-scale sd (default 20 3: allows both weak and strong pooling)")
+    g.add_argument("--sigma-prior", type=_positive, metavar="SCALE", default=1.0,
+                   help="logit-normal: HalfNormal(SCALE) prior of the between-group sd of"
+                        " log-odds (default 1)")
     s = p.add_argument_group("sampling")
-    s.add_argument("--draws", type=_positive_int, default=1000,
-                   help="draws per chain kept (default 1000)")
+    s.add_argument("--draws", type=_positive_int, default=None,
+                   help="draws per chain kept (default 1000; exact engines on more than 25,000"
+                        " groups keep fewer, at most 1e8 values of theta, as their intervals come"
+                        " from closed forms)")
     s.add_argument("--tune", type=_count, default=1000,
                    help="mcmc: warm-up steps per chain, discarded (default 1000)")
     s.add_argument("--chains", type=_positive_int, default=4, help="number of chains (default 4)")
@@ -132,6 +136,7 @@ def _fit_kwargs(args: argparse.Namespace) -> dict:
         "beta_prior": tuple(args.beta_prior),
         "mu_prior": tuple(args.mu_prior),
         "kappa_prior": tuple(args.kappa_prior),
+        "sigma_prior": args.sigma_prior,
         "verify": args.verify,
         "retry": args.retry,
     }
@@ -156,6 +161,8 @@ def _column_kwargs(args: argparse.Namespace) -> dict:
             "give either --outcome (one row per trial) or --successes/--trials (counts), not both."
         )
     columns = {"group": args.group}
+    if getattr(args, "covariates", ()):
+        columns["covariates"] = tuple(args.covariates)
     if args.outcome is not None:
         columns["outcome"] = args.outcome
     else:
@@ -267,6 +274,9 @@ def _add_column_options(p: argparse.ArgumentParser) -> None:
     c.add_argument("--outcome", default=None,
                    help="instead of counts: column of one outcome per row (1/0, true/false,"
                         " yes/no); rows are counted per group")
+    c.add_argument("--covariates", nargs="+", default=(), metavar="COL",
+                   help="numeric group-level columns (one value per group) for --model"
+                        " logit-normal, e.g. a case-mix score; standardised before fitting")
 
 
 # -- check and compare (issue 4) -------------------------------------------------------------
