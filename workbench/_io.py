@@ -43,8 +43,17 @@ def json_text(doc: dict) -> str:
     return json.dumps(_clean(doc), indent=2, default=_default, allow_nan=False) + "\n"
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def write_atomic(path: Path, write: Callable[[Path], None]) -> None:
-    """Call ``write(tmp)`` on a temporary name beside ``path``, then move it into place."""
+    """Call ``write(tmp)`` on a temporary name beside ``path``, then move it into place.
+
+    The file gets the usual permissions (0666 less the umask), not mkstemp's private 0600.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
@@ -52,6 +61,7 @@ def write_atomic(path: Path, write: Callable[[Path], None]) -> None:
     tmp_path = Path(tmp)
     try:
         write(tmp_path)
+        os.chmod(tmp_path, 0o666 & ~_umask())
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():
@@ -93,6 +103,7 @@ def replace_folder(
     check_replaceable(out, marker=marker, kind=kind)
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
+    os.chmod(staging, 0o777 & ~_umask())
     try:
         fill(staging)
         if out.exists():

@@ -449,6 +449,11 @@ def open_run(path: str | Path) -> RunFolder:
     return RunFolder(path, idata, record, estimates)
 
 
+def format_written(run: Run, out: Path) -> str:
+    """The last line of a fit: where the run folder is and whether it is final."""
+    return f"wrote {out}/ ({'final' if run.ready else 'NOT FINAL: diagnostics failed'})"
+
+
 def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
     """The terminal summary of a fit: what was fitted, population, extremes, verdict."""
     from .diagnostics import format_diagnostics
@@ -497,7 +502,7 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
     if run.documents.get("ranking"):
         lines.append(ranking.format_run(run))
     if out is not None:
-        lines.append(f"wrote {out}/ ({'final' if run.ready else 'NOT FINAL: diagnostics failed'})")
+        lines.append(format_written(run, out))
     return "\n".join(lines)
 
 

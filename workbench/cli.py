@@ -112,6 +112,9 @@ def _add_model_options(
                    help="mass of the central intervals (default 0.95)")
     r.add_argument("--target", type=_rate, default=None,
                    help="a target rate: adds prob_above_target and the target flags")
+    r.add_argument("--predict-trials", metavar="M", default=None,
+                   help="also predict successes in M future trials per group (predictions.csv),"
+                        " as 'workbench predict' does")
     r.add_argument("--out", type=Path, default=None,
                    help="folder for one run folder per model and the comparison (default"
                         " compare-<data file name>; replaced whole if it is an earlier one)"
@@ -143,15 +146,21 @@ def _fit_kwargs(args: argparse.Namespace) -> dict:
 
 
 def _fit_and_write(source, args, out: Path, **columns) -> int:
+    if getattr(args, "predict_trials", None) is not None:
+        predict.check_whole(args.predict_trials, "--predict-trials")  # fail before fitting
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # the verdict is printed instead
         run = api.fit(source, **columns, **_fit_kwargs(args))
     api.write_run(run, out)
-    print(api.format_fit(run, out))
+    print(api.format_fit(run))
     if "checks" in run.documents:
         print(format_checks(run.documents["checks"]))
+    if getattr(args, "predict_trials", None):
+        pred = predict.predict_folder(out, trials=args.predict_trials, level=args.level)
+        print(predict.format_prediction(pred))
     if getattr(args, "report", False):
         print(format_report(api.write_report(out)))
+    print(api.format_written(run, out))
     return EXIT_OK if run.ready else EXIT_NOT_READY
 
 
@@ -440,10 +449,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser("demo", help="fit the bundled invented demo data and write a run folder",
                        description="Fit the bundled, invented studio-branch sign-up data and write"
-                                   " a run folder (default ./demo-run).")
+                                   " a run folder (default ./demo-run) with its report, against"
+                                   " an invented sign-up target of 0.20 (--target changes it)"
+                                   " and predictions for 100 future visitors per branch.")
     _add_model_options(d, model_default=api.DEFAULT_MODEL)
     _add_ranking_options(d)
-    d.set_defaults(func=cmd_demo, report=True)  # the demo always writes its report
+    # the demo always writes its report, against an invented sign-up target of 20%
+    d.set_defaults(func=cmd_demo, report=True, target=0.2, predict_trials="100")  # the demo always writes its report
     _add_rank_parser(sub)
     _add_predict_parser(sub)
     _add_check_parser(sub)
