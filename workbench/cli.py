@@ -455,7 +455,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_model_options(d, model_default=api.DEFAULT_MODEL)
     _add_ranking_options(d)
     # the demo always writes its report, against an invented sign-up target of 20%
-    d.set_defaults(func=cmd_demo, report=True, target=0.2, predict_trials="100")  # the demo always writes its report
+    d.set_defaults(func=cmd_demo, report=True, target=0.2, predict_trials="100")
     _add_rank_parser(sub)
     _add_predict_parser(sub)
     _add_check_parser(sub)
