@@ -13,16 +13,14 @@ rough between-group logit sd from the raw rates, at least 0.1), is sampled centr
 
 from __future__ import annotations
 
-import logging
 import re
-import sys
-import warnings
 
 import numpy as np
 import pandas as pd
 from scipy import special
 
-from .exceptions import ParameterError, SamplingError
+from ._mcmc import SamplerSettings, run_nuts
+from .exceptions import ParameterError
 
 #: Gauss-Hermite nodes for population summaries (probabilists' weights, normal density).
 _GH_X, _GH_W = np.polynomial.hermite_e.hermegauss(32)
@@ -106,7 +104,6 @@ def sample(
     idx_n = np.flatnonzero(~centred)
     order = np.argsort(np.concatenate([idx_c, idx_n]))
     k = x.shape[1]
-    progress = sys.stderr.isatty() if progress is None else progress
     seen = trials > 0
     with pm.Model():
         alpha = pm.Normal("alpha", alpha_prior[0], alpha_prior[1])
@@ -132,41 +129,8 @@ def sample(
                 observed=successes[seen],
             )
         pm.Deterministic("eta", eta)
-        logger = logging.getLogger("pymc")
-        level = logger.level
-        logger.setLevel(logging.ERROR)
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                trace = pm.sample(
-                    draws=draws,
-                    tune=tune,
-                    chains=chains,
-                    cores=1,
-                    target_accept=target_accept,
-                    random_seed=seed,
-                    progressbar=progress,
-                    compute_convergence_checks=False,
-                )
-        except Exception as exc:  # noqa: BLE001 - any sampler failure becomes ours
-            raise SamplingError(f"the NUTS sampler failed: {exc}") from exc
-        finally:
-            logger.setLevel(level)
-    post = trace.posterior
+        post, stats = run_nuts(SamplerSettings(draws, tune, chains, target_accept, progress), seed)
     hyper = {"alpha": post["alpha"].values, "sigma": post["sigma"].values}
     if k:
         hyper["beta"] = post["beta"].values
-    stats = {
-        name: trace.sample_stats[name].values
-        for name in (
-            "diverging",
-            "tree_depth",
-            "reached_max_treedepth",
-            "energy",
-            "acceptance_rate",
-            "step_size",
-            "n_steps",
-        )
-        if name in trace.sample_stats
-    }
     return hyper, post["eta"].values, stats, centred

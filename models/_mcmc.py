@@ -30,6 +30,52 @@ class SamplerSettings:
     progress: bool | None = None  # None: a progress bar only when stderr is a terminal
 
 
+#: Sampler statistics kept in the posterior's sample_stats group.
+SAMPLE_STATS = (
+    "diverging",
+    "tree_depth",
+    "reached_max_treedepth",
+    "energy",
+    "acceptance_rate",
+    "step_size",
+    "n_steps",
+)
+
+
+def run_nuts(settings: SamplerSettings, seed: int):
+    """pm.sample on the model in context, quietly; (posterior dataset, sampler statistics).
+
+    One process (cores=1: forked workers fail at random on Linux, per the field notes), a
+    progress bar only on a terminal, PyMC's own convergence checks off (ours judge).
+    """
+    import pymc as pm
+
+    progress = sys.stderr.isatty() if settings.progress is None else settings.progress
+    logger = logging.getLogger("pymc")
+    level = logger.level
+    logger.setLevel(logging.ERROR)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            trace = pm.sample(
+                draws=settings.draws,
+                tune=settings.tune,
+                chains=settings.chains,
+                cores=1,
+                target_accept=settings.target_accept,
+                random_seed=seed,
+                progressbar=progress,
+                compute_convergence_checks=False,
+                return_inferencedata=True,
+            )
+    except Exception as exc:  # noqa: BLE001 - any sampler failure becomes ours
+        raise SamplingError(f"the NUTS sampler failed: {exc}") from exc
+    finally:
+        logger.setLevel(level)
+    stats = {n: trace.sample_stats[n].values for n in SAMPLE_STATS if n in trace.sample_stats}
+    return trace.posterior, stats
+
+
 def sample_hyper(
     successes: np.ndarray,
     trials: np.ndarray,
@@ -43,7 +89,6 @@ def sample_hyper(
     pairs, counts = np.unique(np.stack([successes, trials], axis=1), axis=0, return_counts=True)
     seen = pairs[:, 1] > 0
     pairs, counts = pairs[seen], counts[seen]
-    progress = sys.stderr.isatty() if settings.progress is None else settings.progress
     with pm.Model():
         mu = pm.Beta("mu", prior.mu_a, prior.mu_b)
         log_kappa = pm.Normal("log_kappa", np.log(prior.kappa_median), prior.kappa_log_sd)
@@ -51,39 +96,5 @@ def sample_hyper(
         if len(pairs):
             dist = pm.BetaBinomial.dist(n=pairs[:, 1], alpha=mu * kappa, beta=(1 - mu) * kappa)
             pm.Potential("likelihood", (counts * pm.logp(dist, pairs[:, 0])).sum())
-        logger = logging.getLogger("pymc")
-        level = logger.level
-        logger.setLevel(logging.ERROR)
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                trace = pm.sample(
-                    draws=settings.draws,
-                    tune=settings.tune,
-                    chains=settings.chains,
-                    cores=1,
-                    target_accept=settings.target_accept,
-                    random_seed=seed,
-                    progressbar=progress,
-                    compute_convergence_checks=False,
-                    return_inferencedata=True,
-                )
-        except Exception as exc:  # noqa: BLE001 - any sampler failure becomes ours
-            raise SamplingError(f"the NUTS sampler failed: {exc}") from exc
-        finally:
-            logger.setLevel(level)
-    post = trace.posterior
-    stats = {
-        name: trace.sample_stats[name].values
-        for name in (
-            "diverging",
-            "tree_depth",
-            "reached_max_treedepth",
-            "energy",
-            "acceptance_rate",
-            "step_size",
-            "n_steps",
-        )
-        if name in trace.sample_stats
-    }
+        post, stats = run_nuts(settings, seed)
     return post["mu"].values, np.exp(post["log_kappa"].values), stats

@@ -76,15 +76,19 @@ class BetaMixturePosteriors:
     def mean(self) -> np.ndarray:
         return self._pair_mean()[self.index]
 
-    def moments(self) -> tuple[np.ndarray, np.ndarray]:
-        """Exact posterior mean and variance per group."""
+    def _pair_moments(self) -> tuple[np.ndarray, np.ndarray]:
         m1 = np.empty(len(self.y))
         m2 = np.empty(len(self.y))
         for sl, alpha, beta in self._chunks():
             s = alpha + beta
             m1[sl] = (alpha / s) @ self.weights
             m2[sl] = (alpha * (alpha + 1) / (s * (s + 1))) @ self.weights
-        return m1[self.index], (m2 - m1**2)[self.index]
+        return m1, m2 - m1**2
+
+    def moments(self) -> tuple[np.ndarray, np.ndarray]:
+        """Exact posterior mean and variance per group."""
+        m1, var = self._pair_moments()
+        return m1[self.index], var[self.index]
 
     def _pair_cdf(self, x: np.ndarray) -> np.ndarray:
         out = np.empty(len(self.y))
@@ -115,13 +119,8 @@ class BetaMixturePosteriors:
         """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile."""
         if self.quantile_source is not None:
             return self.quantile_source.ppf(q, tol=tol, max_iter=max_iter)
-        m1 = np.empty(len(self.y))
-        m2 = np.empty(len(self.y))
-        for sl, alpha, beta in self._chunks():
-            s = alpha + beta
-            m1[sl] = (alpha / s) @ self.weights
-            m2[sl] = (alpha * (alpha + 1) / (s * (s + 1))) @ self.weights
-        var = np.maximum(m2 - m1**2, 1e-300)
+        m1, var = self._pair_moments()
+        var = np.maximum(var, 1e-300)
         common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
         x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
         lo = np.zeros_like(x)

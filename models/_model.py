@@ -42,6 +42,16 @@ def _check_rate(value: float, what: str) -> float:
     return float(value)
 
 
+def _check_sampler(est) -> None:
+    """NUTS settings shared by every model with an mcmc engine."""
+    if not isinstance(est.tune, int | np.integer) or est.tune < 0:
+        raise ParameterError(f"tune={est.tune!r} must be a whole number >= 0.")
+    if not (isinstance(est.target_accept, float | int) and 0.5 <= est.target_accept < 1):
+        raise ParameterError(
+            f"target_accept={est.target_accept!r} must be in [0.5, 1); 0.9 or 0.99 are usual."
+        )
+
+
 class _Estimator:
     """Shared fit/summary machinery. Subclasses fill ``_fit`` and the closed forms."""
 
@@ -337,12 +347,7 @@ class BetaBinomial(_Estimator):
 
     def _check_params(self) -> None:
         super()._check_params()
-        if not isinstance(self.tune, int | np.integer) or self.tune < 0:
-            raise ParameterError(f"tune={self.tune!r} must be a whole number >= 0.")
-        if not (isinstance(self.target_accept, float | int) and 0.5 <= self.target_accept < 1):
-            raise ParameterError(
-                f"target_accept={self.target_accept!r} must be in [0.5, 1); 0.9 or 0.99 are usual."
-            )
+        _check_sampler(self)
         try:
             a, b = (float(x) for x in self.mu_prior)
             med, sd = (float(x) for x in self.kappa_prior)
@@ -461,12 +466,7 @@ class LogitNormal(_Estimator):
 
     def _check_params(self) -> None:
         super()._check_params()
-        if not isinstance(self.tune, int | np.integer) or self.tune < 0:
-            raise ParameterError(f"tune={self.tune!r} must be a whole number >= 0.")
-        if not (isinstance(self.target_accept, float | int) and 0.5 <= self.target_accept < 1):
-            raise ParameterError(
-                f"target_accept={self.target_accept!r} must be in [0.5, 1); 0.9 or 0.99 are usual."
-            )
+        _check_sampler(self)
         for what in ("sigma_prior", "effect_prior"):
             v = getattr(self, what)
             if not (isinstance(v, int | float) and v > 0 and np.isfinite(v)):
