@@ -44,6 +44,8 @@ POSTERIOR_FILE = "posterior.nc"
 RUN_FILE = "run.json"
 DIAGNOSTICS_FILE = "diagnostics.json"
 POPULATION_FILE = "population.csv"
+#: Present only in a run folder whose convergence verdict is not-ready.
+NOT_FINAL_FILE = "NOT-FINAL.txt"
 
 
 def demo_data_path() -> Path:
@@ -387,6 +389,22 @@ def estimates_table(run: Run) -> pd.DataFrame:
     return table
 
 
+def not_final_text(run: Run) -> str:
+    """The NOT-FINAL.txt marker: why nothing in this folder may be reported yet."""
+    d = run.diagnostics
+    lines = [
+        "NOT FINAL: the convergence diagnostics of this run failed.",
+        "Nothing in this folder may be reported as a result until a run passes them.",
+        "",
+        "Reasons:",
+        *[f"  - {r['text']}" for r in d.reasons],
+        "",
+        "Remedies, the first to try first:",
+        *[f"  - {m}" for m in d.remedies],
+    ]
+    return "\n".join(lines) + "\n"
+
+
 def write_run(run: Run, out: str | Path) -> Path:
     """Write the run folder atomically; returns its path."""
     out = Path(out)
@@ -406,6 +424,8 @@ def write_run(run: Run, out: str | Path) -> Path:
                 _io.write_json(folder / f"{name}.json", doc)
         for name, writer in files.items():
             writer(folder / name)
+        if not run.ready:
+            _io.write_text(folder / NOT_FINAL_FILE, not_final_text(run))
         run.idata.to_netcdf(str(folder / POSTERIOR_FILE), engine="h5netcdf")
         record["files"] = sorted(p.name for p in folder.iterdir()) + [RUN_FILE]
         _io.write_json(folder / RUN_FILE, record)

@@ -180,10 +180,12 @@ def test_starved_mcmc_not_ready_exits_3_normal_run_ready(tmp_path, capsys):
     diag = json.loads((starved / "diagnostics.json").read_text())
     assert diag["verdict"] == "not-ready" and diag["reasons"] and diag["remedies"]
     assert json.loads((starved / "run.json").read_text())["final"] is False
+    assert "NOT FINAL" in (starved / "NOT-FINAL.txt").read_text()
     assert "NOT FINAL" in capsys.readouterr().out
     normal = tmp_path / "normal"
     assert main(["fit", str(path), "--engine", "mcmc", "--seed", "1", "--out", str(normal)]) == 0
     assert json.loads((normal / "diagnostics.json").read_text())["verdict"] == "ready"
+    assert not (normal / "NOT-FINAL.txt").exists()
 
 
 @pytest.mark.slow
