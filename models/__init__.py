@@ -14,6 +14,7 @@ from ._model import (
     BetaBinomial,
     CompletePooling,
     LogitNormal,
+    Nested,
     NoPooling,
     make_model,
 )
@@ -42,6 +43,7 @@ __all__ = [
     "GroupCounts",
     "HyperPrior",
     "LogitNormal",
+    "Nested",
     "MODELS",
     "NoPooling",
     "NotFittedError",

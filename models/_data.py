@@ -23,6 +23,10 @@ class GroupCounts:
     successes, trials : sequence of int
         Counts with ``0 <= successes <= trials``. A group with zero trials is allowed;
         its estimate is whatever the model says about a group it has not seen.
+    covariates : DataFrame, optional
+        Numeric group-level columns, one row per group in the same order.
+    parents : sequence of str, optional
+        The parent of each group (a region for stores), for the nested model.
 
     Raises
     ------
@@ -34,6 +38,7 @@ class GroupCounts:
     successes: np.ndarray
     trials: np.ndarray
     covariates: pd.DataFrame | None = field(default=None, compare=False)
+    parents: np.ndarray | None = field(default=None, compare=False)
 
     def __init__(
         self,
@@ -41,6 +46,7 @@ class GroupCounts:
         successes: Sequence[int],
         trials: Sequence[int],
         covariates: pd.DataFrame | None = None,
+        parents: Sequence[str] | None = None,
     ) -> None:
         names_arr = np.asarray([str(x) for x in names], dtype=object)
         y = _as_counts(successes, "successes", names_arr)
@@ -69,7 +75,19 @@ class GroupCounts:
         object.__setattr__(self, "names", names_arr)
         object.__setattr__(self, "successes", y)
         object.__setattr__(self, "trials", n)
+        if parents is not None:
+            parents = np.asarray([str(p) for p in parents], dtype=object)
+            if len(parents) != len(names_arr):
+                raise DataError(
+                    f"parents has {len(parents)} labels for {len(names_arr)} groups; give one each."
+                )
+            blank = [names_arr[i] for i, p in enumerate(parents) if not p.strip()]
+            if blank:
+                raise DataError(
+                    f"group {blank[0]!r} has a blank parent label; give every group its parent."
+                )
         object.__setattr__(self, "covariates", covariates)
+        object.__setattr__(self, "parents", parents)
 
     @property
     def n_groups(self) -> int:

@@ -6,9 +6,9 @@ average covariates and beta the change in log-odds per sd).
 
 Parameterisation is chosen per group by information content (field notes: with little data
 per group the centred form fails; with a lot the non-centred one does): a group whose
-binomial information about its log-odds, n_j p (1 - p), exceeds the prior's, 1 / s^2 (s a
-rough between-group logit sd from the raw rates, at least 0.1), is sampled centred
-(eta_j ~ Normal(alpha + x_j beta, sigma)); the rest non-centred.
+binomial information about its log-odds, n_j p (1 - p), exceeds ten times the prior's,
+10 / s^2 (s a rough between-group logit sd from the raw rates, at least 0.1), is sampled
+centred (eta_j ~ Normal(alpha + x_j beta, sigma)); the rest non-centred.
 """
 
 from __future__ import annotations
@@ -21,6 +21,11 @@ from scipy import special
 
 from ._mcmc import SamplerSettings, run_nuts
 from .exceptions import ParameterError
+
+#: A group is sampled centred when its binomial information about its log-odds exceeds this
+#: many times the prior's. Measured on the demo data (nested model, 4 chains x 1000):
+#: ratio 1 gave 3 divergences, all non-centred 9, ratio 10 none.
+CENTRED_INFORMATION_RATIO = 10.0
 
 #: Gauss-Hermite nodes for population summaries (probabilists' weights, normal density).
 _GH_X, _GH_W = np.polynomial.hermite_e.hermegauss(32)
@@ -68,12 +73,19 @@ def centred_mask(successes: np.ndarray, trials: np.ndarray) -> np.ndarray:
     raw = special.logit((successes[seen] + 0.5) / (trials[seen] + 1.0))
     s = max(float(np.std(raw)), 0.1) if seen.sum() > 1 else 1.0
     info = trials * p * (1 - p)
-    return info > 1.0 / s**2
+    return info > CENTRED_INFORMATION_RATIO / s**2
 
 
-def population_rates(alpha: np.ndarray, sigma: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and sd of expit(alpha + sigma z) over z ~ N(0, 1), per draw (Gauss-Hermite)."""
-    rates = special.expit(alpha[..., None] + sigma[..., None] * _GH_X)
+def population_rates(
+    alpha: np.ndarray, sigma: np.ndarray, tau: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and sd of expit(alpha + sigma z) over z ~ N(0, 1), per draw (Gauss-Hermite).
+
+    With ``tau`` (nested), over expit(alpha + tau z1 + sigma z2): a new group in a new parent;
+    the sum of two independent normals is one normal with sd sqrt(tau^2 + sigma^2).
+    """
+    spread = sigma if tau is None else np.sqrt(sigma**2 + tau**2)
+    rates = special.expit(alpha[..., None] + spread[..., None] * _GH_X)
     mean = rates @ _GH_W
     var = (rates**2) @ _GH_W - mean**2
     return mean, np.sqrt(np.maximum(var, 0.0))
@@ -93,8 +105,14 @@ def sample(
     target_accept: float,
     seed: int,
     progress: bool | None,
+    parent_index: np.ndarray | None = None,
+    tau_prior: float = 1.0,
 ) -> tuple[dict[str, np.ndarray], np.ndarray, dict[str, np.ndarray], np.ndarray]:
-    """Posterior draws: hyper (chain, draw[, k]), eta (chain, draw, group), sampler stats."""
+    """Posterior draws: hyper (chain, draw[, k]), eta (chain, draw, group), sampler stats.
+
+    With ``parent_index`` (each group's parent, 0..P-1) the nested form: a non-centred parent
+    effect tau * z_p, tau ~ HalfNormal(tau_prior), joins every group's mean log-odds.
+    """
     import pymc as pm
     import pytensor.tensor as pt
 
@@ -113,6 +131,11 @@ def sample(
             m = alpha + pt.dot(x, beta)
         else:
             m = alpha + pt.zeros(g)
+        if parent_index is not None:
+            tau = pm.HalfNormal("tau", tau_prior)
+            z_parent = pm.Normal("z_parent", 0.0, 1.0, shape=int(parent_index.max()) + 1)
+            effect = pm.Deterministic("parent_effect", tau * z_parent)
+            m = m + effect[parent_index]
         parts = []
         if len(idx_c):
             parts.append(pm.Normal("eta_centred", m[idx_c], sigma, shape=len(idx_c)))
@@ -133,4 +156,7 @@ def sample(
     hyper = {"alpha": post["alpha"].values, "sigma": post["sigma"].values}
     if k:
         hyper["beta"] = post["beta"].values
+    if parent_index is not None:
+        hyper["tau"] = post["tau"].values
+        hyper["parent_effect"] = post["parent_effect"].values
     return hyper, post["eta"].values, stats, centred

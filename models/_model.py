@@ -120,6 +120,7 @@ class _Estimator:
             **extra_attrs,
         }
         x, columns = getattr(self, "_covariates", (None, ()))
+        parent_effects = getattr(self, "_parent_effects", None)
         idata = make_idata(
             data,
             theta,
@@ -129,6 +130,7 @@ class _Estimator:
             sample_stats=sample_stats,
             covariates=x,
             covariate_columns=columns,
+            parent_effects=parent_effects,
         )
         add_log_likelihood(idata)
         self.fit_seconds_ = time.perf_counter() - started
@@ -192,7 +194,8 @@ class _Estimator:
         post = self.idata_.posterior
         rows = []
         extra = [v for v in post.data_vars if v.startswith("beta_")]
-        for name in ("mu", "kappa", "between_group_sd", "theta_new", "alpha", "sigma", *extra):
+        names = ("mu", "kappa", "between_group_sd", "theta_new", "alpha", "sigma", "tau", *extra)
+        for name in names:
             if name not in post:
                 continue
             x = post[name].values.ravel()
@@ -205,6 +208,7 @@ class _Estimator:
             "theta_new": "new_group_rate",
             "alpha": "logit_mean",
             "sigma": "logit_between_group_sd",
+            "tau": "logit_between_parent_sd",
             **{name: f"effect_per_sd_{name[5:]}" for name in extra},
         }
         table = pd.DataFrame(rows, columns=["quantity", "mean", "median", "lower", "upper"])
@@ -488,6 +492,7 @@ class LogitNormal(_Estimator):
         from ._logit import covariate_names, population_rates, sample, standardise
 
         x, info = standardise(data.covariates, data.n_groups)
+        parent_index = self._parent_index(data)
         hyper, eta, stats_, centred = sample(
             data.successes,
             data.trials,
@@ -501,13 +506,20 @@ class LogitNormal(_Estimator):
             target_accept=float(self.target_accept),
             seed=seed,
             progress=self.progress,
+            parent_index=parent_index,
+            tau_prior=float(getattr(self, "tau_prior", 1.0)),
         )
         rng = np.random.default_rng(seed + 1)
         alpha, sigma = hyper["alpha"], hyper["sigma"]
+        tau = hyper.get("tau")
         theta = special.expit(eta)
-        theta_new = special.expit(alpha + sigma * rng.standard_normal(alpha.shape))
-        mean, sd = population_rates(alpha, sigma)
+        spread = sigma if tau is None else np.sqrt(sigma**2 + tau**2)
+        theta_new = special.expit(alpha + spread * rng.standard_normal(alpha.shape))
+        mean, sd = population_rates(alpha, sigma, tau)
         out = {"alpha": alpha, "sigma": sigma, "mu": mean, "between_group_sd": sd}
+        if tau is not None:
+            out["tau"] = tau
+            self._parent_effects = hyper["parent_effect"]
         names = covariate_names(info["columns"])
         for k, name in enumerate(names):
             out[name] = hyper["beta"][..., k]
@@ -521,6 +533,9 @@ class LogitNormal(_Estimator):
             "covariate_effects": names,
         }
         return theta, theta_new, out, extra, stats_
+
+    def _parent_index(self, data: GroupCounts) -> np.ndarray | None:
+        return None
 
     def _shrinkage(self) -> np.ndarray:
         # share of the way from the observed rate to the group's population-model mean
@@ -542,8 +557,69 @@ class LogitNormal(_Estimator):
         return np.where(np.isnan(obs), 1.0, np.clip(np.nan_to_num(share, nan=0.0), 0.0, 1.0))
 
 
+class Nested(LogitNormal):
+    """Groups within parents (stores within regions), on the log-odds scale.
+
+    logit theta_j = alpha + x_j . beta + u_p(j) + sigma z_j, with parent effects
+    u_p = tau z_p, z_p ~ Normal(0, 1): groups borrow first from their parent, parents from the
+    whole. ``tau`` is the between-parent sd of log-odds, ``sigma`` the between-group sd within
+    a parent. Priors as for :class:`LogitNormal`, tau ~ HalfNormal(1). Needs
+    ``GroupCounts.parents``. The new-group rate is that of a new group in a new parent.
+    """
+
+    name = "nested"
+
+    def __init__(self, *, tau_prior: float = 1.0, target_accept: float = 0.99, **kwargs) -> None:
+        super().__init__(target_accept=target_accept, **kwargs)
+        self.tau_prior = tau_prior
+
+    def _check_params(self) -> None:
+        super()._check_params()
+        v = self.tau_prior
+        if not (isinstance(v, int | float) and v > 0 and np.isfinite(v)):
+            raise ParameterError(f"tau_prior={v!r} must be a positive number.")
+
+    def _priors(self) -> dict:
+        return {**super()._priors(), "tau": f"HalfNormal({self.tau_prior:g})",
+                "tau_scale": float(self.tau_prior)}
+
+    def _parent_index(self, data: GroupCounts) -> np.ndarray:
+        if data.parents is None:
+            raise ParameterError(
+                "the nested model needs each group's parent: pass parents to GroupCounts"
+                " (on the command line, --parent COLUMN)."
+            )
+        _, index = np.unique(data.parents.astype(str), return_inverse=True)
+        return index.ravel()
+
+    def parent_summary(self, level: float = 0.95) -> pd.DataFrame:
+        """One row per parent: its effect on the log-odds and the rate of its typical group."""
+        self._require_fitted()
+        level = _check_level(level)
+        post = self.idata_.posterior
+        effect = post["parent_effect"].stack(sample=("chain", "draw")).values
+        rate = special.expit(effect + post["alpha"].values.ravel()[None, :])
+        q = [(1 - level) / 2, 0.5, (1 + level) / 2]
+        lo, med, hi = np.quantile(effect, q, axis=1)
+        rlo, rmed, rhi = np.quantile(rate, q, axis=1)
+        parents = self.data_.parents.astype(str)
+        labels = post["parent"].values.astype(str)
+        return pd.DataFrame(
+            {
+                "parent": labels,
+                "groups": [int((parents == p).sum()) for p in labels],
+                "effect_mean": effect.mean(axis=1),
+                "effect_lower": lo,
+                "effect_upper": hi,
+                "typical_rate_median": rmed,
+                "typical_rate_lower": rlo,
+                "typical_rate_upper": rhi,
+            }
+        )
+
+
 MODELS: dict[str, type[_Estimator]] = {
-    cls.name: cls for cls in (BetaBinomial, NoPooling, CompletePooling, LogitNormal)
+    cls.name: cls for cls in (BetaBinomial, NoPooling, CompletePooling, LogitNormal, Nested)
 }
 
 

@@ -50,10 +50,13 @@ def make_idata(
     sample_stats: Mapping[str, np.ndarray] | None = None,
     covariates: np.ndarray | None = None,
     covariate_columns: tuple[str, ...] = (),
+    parent_effects: np.ndarray | None = None,
 ) -> az.InferenceData:
     """Assemble the posterior currency from arrays laid out as (chain, draw[, group]).
 
-    ``covariates`` (groups, k), standardised, go to ``constant_data["covariates"]``.
+    ``covariates`` (groups, k), standardised, go to ``constant_data["covariates"]``;
+    ``parent_effects`` (chain, draw, parent) to ``posterior["parent_effect"]``, with each
+    group's parent in ``constant_data["parent"]`` (the nested model).
     """
     if theta.ndim != 3 or theta.shape[2] != data.n_groups:
         raise ValueError(f"theta must be (chain, draw, {data.n_groups}); got {theta.shape}")
@@ -67,11 +70,19 @@ def make_idata(
     post["theta_new"] = (("chain", "draw"), theta_new.reshape(chains, draws))
     for name, value in hyper.items():
         post[name] = (("chain", "draw"), np.asarray(value, dtype=float).reshape(chains, draws))
+    if parent_effects is not None:
+        labels = np.unique(data.parents.astype(str))
+        coords["parent"] = labels
+        post["parent_effect"] = (("chain", "draw", "parent"), parent_effects)
     posterior = xr.Dataset(post, coords=coords)
     observed = xr.Dataset(
         {"successes": (("group",), data.successes)}, coords={"group": coords["group"]}
     )
     constant = xr.Dataset({"trials": (("group",), data.trials)}, coords={"group": coords["group"]})
+    if data.parents is not None:
+        constant["parent"] = xr.DataArray(
+            data.parents.astype(str), dims=("group",), coords={"group": coords["group"]}
+        )
     if covariates is not None and covariates.shape[1]:
         constant["covariates"] = xr.DataArray(
             covariates,
@@ -153,7 +164,7 @@ def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
         a = mu * kappa
         b = (1 - mu) * kappa
         integrated = log_choose + special.betaln(y + a, n - y + b) - special.betaln(a, b)
-    elif model == "logit-normal":
+    elif model in ("logit-normal", "nested"):
         integrated = _logit_normal_integrated(idata, y, n, log_choose)
     elif model == "no-pooling":
         prior = attr(idata, "priors")
@@ -169,7 +180,7 @@ _AGH_T, _AGH_W = np.polynomial.hermite_e.hermegauss(12)
 
 
 def logit_means(idata: az.InferenceData) -> np.ndarray:
-    """alpha + x_j . beta per draw and group, (chain, draw, group), for the logit-normal model."""
+    """alpha + x_j . beta (+ the parent's effect) per draw and group, (chain, draw, group)."""
     post = idata.posterior
     m = post["alpha"].values[..., None] * np.ones(post.sizes["group"])
     if "covariates" in idata.constant_data:
@@ -177,6 +188,10 @@ def logit_means(idata: az.InferenceData) -> np.ndarray:
         names = attr(idata, "covariate_effects") or []
         for k, name in enumerate(names):
             m = m + post[name].values[..., None] * x[:, k]
+    if "parent_effect" in post:
+        parent = idata.constant_data["parent"].values.astype(str)
+        effects = post["parent_effect"].sel(parent=xr.DataArray(parent, dims="group"))
+        m = m + effects.transpose("chain", "draw", "group").values
     return m
 
 

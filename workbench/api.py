@@ -38,7 +38,8 @@ with warnings.catch_warnings():
     import arviz as az
 
 DEFAULT_MODEL = "beta-binomial"
-COVARIATE_MODELS = ("logit-normal",)
+COVARIATE_MODELS = ("logit-normal", "nested")
+PARENT_MODELS = ("nested",)
 ESTIMATE_FILE = "estimates.csv"
 POSTERIOR_FILE = "posterior.nc"
 RUN_FILE = "run.json"
@@ -134,12 +135,14 @@ def fit(
     draws: int | None = None,
     chains: int = 4,
     tune: int = 1000,
-    target_accept: float = 0.9,
+    target_accept: float | None = None,
     beta_prior: tuple[float, float] = (1.0, 1.0),
     mu_prior: tuple[float, float] = (1.0, 1.0),
     kappa_prior: tuple[float, float] = (20.0, 3.0),
     sigma_prior: float = 1.0,
+    tau_prior: float = 1.0,
     covariates: tuple[str, ...] = (),
+    parent: str | None = None,
     verify: bool = False,
     retry: bool = False,
     thresholds: Thresholds | None = None,
@@ -162,11 +165,21 @@ def fit(
             trials=trials,
             outcome=outcome,
             covariates=tuple(covariates),
+            parent=parent,
         )
     )
     if model not in MODELS:
         quoted = ", ".join(repr(m) for m in MODELS)
         raise ParameterError(f"model={model!r} is not one of {quoted}.")
+    if (loaded.counts.parents is not None) != (model in PARENT_MODELS):
+        if model in PARENT_MODELS:
+            raise ParameterError(
+                f"model {model!r} needs each group's parent; pass --parent COLUMN (parent=...)."
+            )
+        raise ParameterError(
+            f"a parent column is used only by {', '.join(PARENT_MODELS)}; add --model"
+            f" {PARENT_MODELS[0]} or drop --parent."
+        )
     if loaded.counts.covariates is not None and model not in COVARIATE_MODELS:
         raise ParameterError(
             f"covariates are used only by {', '.join(COVARIATE_MODELS)}; add --model"
@@ -190,7 +203,9 @@ def fit(
         "mu_prior": list(mu_prior),
         "kappa_prior": list(kappa_prior),
         "sigma_prior": sigma_prior,
+        "tau_prior": tau_prior,
         "covariates": list(covariates),
+        "parent": parent,
         "verify": verify,
         "retry": retry,
     }
@@ -220,6 +235,8 @@ def fit(
         documents=documents,
         messages=messages,
     )
+    if hasattr(estimator, "parent_summary"):
+        run.tables["parents"] = estimator.parent_summary(level)
     if verify:
         run.documents["verification"] = verify_run(run, progress=progress)
     if checks is not False:
@@ -265,13 +282,14 @@ def _fit_model(loaded: LoadedData, settings: dict, progress: bool | None):
         draws=default_draws(settings, loaded.counts.n_groups),
         chains=int(settings["chains"]),
         tune=int(settings["tune"]),
-        target_accept=float(settings["target_accept"]),
+        target_accept=settings["target_accept"],
         random_seed=settings["seed"],
         a=float(a),
         b=float(b),
         mu_prior=tuple(settings["mu_prior"]),
         kappa_prior=tuple(settings["kappa_prior"]),
         sigma_prior=float(settings.get("sigma_prior", 1.0)),
+        tau_prior=float(settings.get("tau_prior", 1.0)),
         progress=progress,
     )
     return estimator.fit(loaded.counts)

@@ -87,8 +87,11 @@ def _add_model_options(
                    help="beta-binomial: LogNormal prior of the concentration, by its median and"
                         " log-scale sd (default 20 3: allows both weak and strong pooling)")
     g.add_argument("--sigma-prior", type=_positive, metavar="SCALE", default=1.0,
-                   help="logit-normal: HalfNormal(SCALE) prior of the between-group sd of"
-                        " log-odds (default 1)")
+                   help="logit-normal, nested: HalfNormal(SCALE) prior of the between-group"
+                        " sd of log-odds (default 1)")
+    g.add_argument("--tau-prior", type=_positive, metavar="SCALE", default=1.0,
+                   help="nested: HalfNormal(SCALE) prior of the between-parent sd of log-odds"
+                        " (default 1)")
     s = p.add_argument_group("sampling")
     s.add_argument("--draws", type=_positive_int, default=None,
                    help="draws per chain kept (default 1000; exact engines on more than 25,000"
@@ -97,8 +100,9 @@ def _add_model_options(
     s.add_argument("--tune", type=_count, default=1000,
                    help="mcmc: warm-up steps per chain, discarded (default 1000)")
     s.add_argument("--chains", type=_positive_int, default=4, help="number of chains (default 4)")
-    s.add_argument("--target-accept", type=float, default=0.9,
-                   help="mcmc: NUTS target acceptance in [0.5, 1) (default 0.9)")
+    s.add_argument("--target-accept", type=float, default=None,
+                   help="mcmc: NUTS target acceptance in [0.5, 1) (default 0.9; 0.99 for nested,"
+                        " whose between-parent sd often sits near zero)")
     s.add_argument("--seed", type=_count, default=None,
                    help="random seed; the one used is recorded in run.json (default: fresh)")
     s.add_argument("--verify", action="store_true",
@@ -140,6 +144,7 @@ def _fit_kwargs(args: argparse.Namespace) -> dict:
         "mu_prior": tuple(args.mu_prior),
         "kappa_prior": tuple(args.kappa_prior),
         "sigma_prior": args.sigma_prior,
+        "tau_prior": args.tau_prior,
         "verify": args.verify,
         "retry": args.retry,
     }
@@ -172,6 +177,8 @@ def _column_kwargs(args: argparse.Namespace) -> dict:
     columns = {"group": args.group}
     if getattr(args, "covariates", ()):
         columns["covariates"] = tuple(args.covariates)
+    if getattr(args, "parent", None):
+        columns["parent"] = args.parent
     if args.outcome is not None:
         columns["outcome"] = args.outcome
     else:
@@ -285,7 +292,11 @@ def _add_column_options(p: argparse.ArgumentParser) -> None:
                         " yes/no); rows are counted per group")
     c.add_argument("--covariates", nargs="+", default=(), metavar="COL",
                    help="numeric group-level columns (one value per group) for --model"
-                        " logit-normal, e.g. a case-mix score; standardised before fitting")
+                        " logit-normal or nested, e.g. a case-mix score; standardised before"
+                        " fitting")
+    c.add_argument("--parent", default=None, metavar="COL",
+                   help="column naming each group's parent (a region for stores; one per"
+                        " group) for --model nested")
 
 
 # -- check and compare (issue 4) -------------------------------------------------------------

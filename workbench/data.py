@@ -187,11 +187,14 @@ def load_groups(
     trials: str = "trials",
     outcome: str | None = None,
     covariates: list[str] | tuple[str, ...] = (),
+    parent: str | None = None,
 ) -> LoadedData:
     """Read, validate and aggregate a table into :class:`models.GroupCounts`.
 
     ``covariates`` name numeric group-level columns (one value per group: rows of one group
-    must agree); they are kept beside the counts for models that use them.
+    must agree); they are kept beside the counts for models that use them. ``parent`` names
+    the column of each group's parent (a region for stores), one per group, for the nested
+    model.
 
     Raises
     ------
@@ -205,6 +208,8 @@ def load_groups(
         _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
     for c in covariates:
         _require_columns(table, {"covariates": c}, name)
+    if parent is not None:
+        _require_columns(table, {"parent": parent}, name)
     if len(table) == 0:
         raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
     column = table[group]
@@ -276,8 +281,36 @@ def load_groups(
                 )
         cov_frame = per_row.groupby("group", sort=False)[list(covariates)].first()
         cov_frame = cov_frame.loc[summed.index].reset_index(drop=True)
+    parents = None
+    if parent is not None:
+        column = table[parent]
+        plabels = column.where(column.notna(), "").astype(str)
+        blank = np.flatnonzero(plabels.str.strip().eq("").to_numpy())
+        if len(blank):
+            i = int(blank[0])
+            raise DataError(
+                f"{_row_label(i)} (group {labels.iloc[i]!r}): column {parent!r} is blank;"
+                f" every row needs its parent ({len(blank)} row(s) so)."
+            )
+        pairs = pd.DataFrame({"group": labels.to_numpy(), "parent": plabels.to_numpy()})
+        per_group = pairs.groupby("group", sort=False)["parent"].nunique()
+        if (per_group > 1).any():
+            g = per_group.index[(per_group > 1).to_numpy()][0]
+            rows = np.flatnonzero(labels.to_numpy() == g)
+            first = plabels.iloc[rows[0]]
+            i = int(next(r for r in rows if plabels.iloc[r] != first))
+            raise DataError(
+                f"{_row_label(i)} (group {g!r}): column {parent!r} is {plabels.iloc[i]!r} but an"
+                f" earlier row of the group says {first!r}; a group has one parent."
+            )
+        parents = pairs.groupby("group", sort=False)["parent"].first().loc[summed.index]
+        parents = parents.to_numpy()
     counts = GroupCounts(
-        summed.index.to_numpy(), summed["successes"], summed["trials"], covariates=cov_frame
+        summed.index.to_numpy(),
+        summed["successes"],
+        summed["trials"],
+        covariates=cov_frame,
+        parents=parents,
     )
     repeated = int((summed["rows"] > 1).sum())
     zero = summed.index[summed["trials"].to_numpy() == 0].astype(str).tolist()
@@ -296,6 +329,7 @@ def load_groups(
         "source": name,
         "layout": "one row per trial" if outcome is not None else "aggregated counts",
         "covariates": list(covariates),
+        "parent": parent,
         "columns": {
             "group": group,
             **({"outcome": outcome} if outcome else {"successes": successes, "trials": trials}),

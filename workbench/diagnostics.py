@@ -82,12 +82,14 @@ def _num(x) -> float | None:
 
 def _quantity_table(idata) -> pd.DataFrame:
     post = idata.posterior
-    # every group rate and every (chain, draw) hyperparameter; theta_new and the derived
+    # every group rate, hyperparameter and parent effect; theta_new and the derived
     # between-group sd are functions of these
     hyper = [
         v
         for v in post.data_vars
-        if post[v].dims == ("chain", "draw") and v not in ("theta_new", "between_group_sd")
+        if post[v].dims[:2] == ("chain", "draw")
+        and len(post[v].dims) <= 3
+        and v not in ("theta", "theta_new", "between_group_sd")
     ]
     names = ["theta", *hyper]
     ds = post[names]
@@ -101,8 +103,9 @@ def _quantity_table(idata) -> pd.DataFrame:
         mcse_hi = az.mcse(ds, method="quantile", prob=0.975)
     frames = []
     for name in names:
-        if name == "theta":
-            labels = [f"theta[{g}]" for g in post["group"].values.astype(str)]
+        dims = post[name].dims[2:]
+        if dims:
+            labels = [f"{name}[{c}]" for c in post[dims[0]].values.astype(str)]
         else:
             labels = [name]
         frames.append(

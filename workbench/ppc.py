@@ -116,7 +116,13 @@ GROUP_COLUMNS = [
 ]
 
 #: Models whose ``y_group`` integrates the group's own rate out (complete pooling has none).
-INTEGRATED_MODELS = ("beta-binomial", "no-pooling", "complete-pooling", "logit-normal")
+INTEGRATED_MODELS = (
+    "beta-binomial",
+    "no-pooling",
+    "complete-pooling",
+    "logit-normal",
+    "nested",
+)
 
 #: Fewest posterior draws for which PSIS-LOO is attempted.
 MIN_LOO_DRAWS = 50
@@ -431,7 +437,7 @@ def _new_group_replicates(
         rate = rng.beta(prior["a"], prior["b"], size=(len(draws), len(cols)))
     elif model == "complete-pooling":
         rate = _flat_theta(idata)[np.ix_(draws, cols)]
-    elif model == "logit-normal":
+    elif model in ("logit-normal", "nested"):
         m = logit_means(_subset(idata, cols))
         m = m.reshape(-1, len(cols))[draws]
         sigma = post["sigma"].transpose("chain", "draw").values.ravel()[draws, None]

@@ -1054,10 +1054,14 @@ def command_line(record: dict) -> str | None:
     for key, (flag, models) in _PRIOR_FLAGS.items():
         if s.get(key) is not None and s.get("model") in models:
             parts += [flag, *(repr(float(v)) for v in s[key])]
-    if s.get("sigma_prior") is not None and s.get("model") == "logit-normal":
+    if s.get("sigma_prior") is not None and s.get("model") in ("logit-normal", "nested"):
         parts += ["--sigma-prior", repr(float(s["sigma_prior"]))]
+    if s.get("tau_prior") is not None and s.get("model") == "nested":
+        parts += ["--tau-prior", repr(float(s["tau_prior"]))]
     if s.get("covariates"):
         parts += ["--covariates", *(str(c) for c in s["covariates"])]
+    if s.get("parent"):
+        parts += ["--parent", str(s["parent"])]
     for key in ("verify", "retry"):
         if s.get(key):
             parts.append(f"--{key}")
