@@ -235,6 +235,9 @@ def fit(
         documents=documents,
         messages=messages,
     )
+    note = spread_note(estimator, level)
+    if note:
+        messages.append(note)
     if hasattr(estimator, "parent_summary"):
         run.tables["parents"] = estimator.parent_summary(level)
     if verify:
@@ -272,6 +275,30 @@ def default_draws(settings: dict, groups: int) -> int:
     if engine == "exact" and chains * 1000 * groups > EXACT_STORED_CELLS:
         return max(100, EXACT_STORED_CELLS // (chains * groups))
     return 1000
+
+
+def spread_note(estimator, level: float) -> str | None:
+    """Say in words when the data cannot tell the groups apart (beta-binomial models).
+
+    When even the low end of kappa's interval outweighs the median group's trials, every
+    typical group is pulled more than halfway to the population mean.
+    """
+    post = estimator.idata_.posterior
+    if "kappa" not in post:
+        return None
+    trials = estimator.data_.trials
+    seen = trials[trials > 0]
+    if not len(seen):
+        return None
+    low = float(np.quantile(post["kappa"].values, (1 - level) / 2))
+    median_trials = float(np.median(seen))
+    if low <= median_trials:
+        return None
+    return (
+        "no clearly detectable between-group spread: even the low end of the concentration"
+        f" interval ({low:.3g}) outweighs the median group's {median_trials:.0f} trials, so"
+        " every typical group is pulled more than halfway to the population mean."
+    )
 
 
 def _fit_model(loaded: LoadedData, settings: dict, progress: bool | None):
@@ -514,8 +541,6 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
             f"  {row.quantity:<18} {row.mean:10.4g}   {level:.0%} interval"
             f" [{row.lower:.4g}, {row.upper:.4g}]"
         )
-    if "kappa" in idata.posterior and float(idata.posterior["kappa"].median()) > 1e6:
-        lines.append("  no detectable between-group spread: the groups look alike.")
     est = run.estimates.sort_values("posterior_mean", ascending=False)
     show = est if len(est) <= 2 * rows else pd.concat([est.head(rows), est.tail(rows)])
     lines.append(

@@ -1,0 +1,41 @@
+"""The Python API: notes in words, default draws, covariates and parents checks."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from models import GroupCounts
+from workbench import api
+from workbench.data import LoadedData
+
+
+def _loaded(y, n):
+    counts = GroupCounts([f"g{i}" for i in range(len(n))], y, n)
+    return LoadedData(counts, {"rows_read": len(n), "rows_used": len(n), "groups": len(n),
+                               "total_successes": int(np.sum(y)), "total_trials": int(np.sum(n))})
+
+
+def test_no_detectable_spread_is_said_in_words():
+    # simulation with known truth: 50 groups sharing one rate, 2,000 trials each
+    rng = np.random.default_rng(3)
+    n = np.full(50, 2000)
+    run = api.fit(_loaded(rng.binomial(n, 0.1), n), seed=1, checks=False)
+    assert any("no clearly detectable between-group spread" in m for m in run.messages)
+    assert any("between-group spread" in note for note in run.record()["notes"])
+
+
+def test_real_spread_gets_no_such_note():
+    rng = np.random.default_rng(4)
+    n = rng.integers(50, 500, size=40)
+    y = rng.binomial(n, rng.beta(2, 8, size=40))
+    run = api.fit(_loaded(y, n), seed=1, checks=False)
+    assert not any("between-group spread" in m for m in run.messages)
+
+
+def test_default_draws_bound_exact_storage():
+    settings = {"draws": None, "model": "beta-binomial", "engine": "auto", "chains": 4}
+    assert api.default_draws(settings, 1000) == 1000
+    assert api.default_draws(settings, 100_000) == 250
+    assert api.default_draws(settings, 10_000_000) == 100
+    assert api.default_draws({**settings, "engine": "mcmc"}, 100_000) == 1000
+    assert api.default_draws({**settings, "draws": 77}, 100_000) == 77
