@@ -222,6 +222,8 @@ def _spread_labels(
                 va="center",
                 zorder=4,
                 arrowprops=arrow if abs(shift) > 5 else None,
+                # a pale backing so reference lines never run through a name
+                bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.85},
             )
 
 
