@@ -349,73 +349,59 @@ def verify_run(run: Run, *, progress: bool | None = None) -> dict:
         exact, sampled = fitted, fitted
         what = "closed-form posterior against the engine's own draws"
     truth = exact.summary(level)
-    mc = sampled.summary(level) if sampled is not exact else None
-    theta = sampled.idata_.posterior["theta"]
+    draws = sampled.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
+    if sampled is not exact:
+        mc = sampled.summary(level)
+        lower_mc, upper_mc = mc["lower"].to_numpy(), mc["upper"].to_numpy()
+    else:
+        lower_mc, upper_mc = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2], axis=1)
+    return _agreement(
+        run, what, truth, draws.mean(axis=1), lower_mc, upper_mc, _theta_mcse(sampled)
+    )
+
+
+def _theta_mcse(fitted) -> np.ndarray:
+    """Monte Carlo standard error of each group's posterior mean (ArviZ)."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        mcse = az.mcse(sampled.idata_.posterior[["theta"]], method="mean")["theta"].values
-    draws = theta.stack(sample=("chain", "draw")).values
-    mean_mc = draws.mean(axis=1)
-    lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
-    lower_mc, upper_mc = np.quantile(draws, [lo_q, hi_q], axis=1)
-    if mc is not None:
-        lower_mc, upper_mc = mc["lower"].to_numpy(), mc["upper"].to_numpy()
+        return az.mcse(fitted.idata_.posterior[["theta"]], method="mean")["theta"].values
+
+
+def _agreement_of_two_runs(run: Run, first, second, level: float) -> dict:
+    """Two independent MCMC runs of one model: differences in combined-MCSE units."""
+    a, b = first.summary(level), second.summary(level)
+    mcse = np.hypot(_theta_mcse(first), _theta_mcse(second))
+    return _agreement(
+        run,
+        "two independent MCMC runs (no exact engine for this model)",
+        a,
+        b["posterior_mean"].to_numpy(),
+        b["lower"].to_numpy(),
+        b["upper"].to_numpy(),
+        mcse,
+    )
+
+
+def _agreement(run: Run, what: str, reference: pd.DataFrame, mean, lower, upper, mcse) -> dict:
+    """The verification table (run.tables["verification"]) and its summary for run.json."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        z = (mean_mc - truth["posterior_mean"].to_numpy()) / mcse
+        z = (mean - reference["posterior_mean"].to_numpy()) / mcse
     z = np.where(np.isfinite(z), z, 0.0)
     table = pd.DataFrame(
         {
-            "group": truth["group"],
-            "mean_reference": truth["posterior_mean"],
-            "mean_sampled": mean_mc,
+            "group": reference["group"],
+            "mean_reference": reference["posterior_mean"],
+            "mean_sampled": mean,
             "mcse": mcse,
             "z": z,
-            "lower_difference": lower_mc - truth["lower"].to_numpy(),
-            "upper_difference": upper_mc - truth["upper"].to_numpy(),
+            "lower_difference": lower - reference["lower"].to_numpy(),
+            "upper_difference": upper - reference["upper"].to_numpy(),
         }
     )
     run.tables["verification"] = table
     within = float(np.mean(np.abs(z) <= 4))
     return {
         "what": what,
-        "groups": int(len(table)),
-        "share_within_4_mcse": within,
-        "max_abs_z": float(np.max(np.abs(z))),
-        "max_abs_interval_difference": float(
-            np.max(np.abs(table[["lower_difference", "upper_difference"]].to_numpy()))
-        ),
-        "agree": within >= 0.99,
-    }
-
-
-def _agreement_of_two_runs(run: Run, first, second, level: float) -> dict:
-    """Two independent MCMC runs of one model: differences in combined-MCSE units."""
-    tables = []
-    for fitted in (first, second):
-        post = fitted.idata_.posterior
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            mcse = az.mcse(post[["theta"]], method="mean")["theta"].values
-        tables.append((fitted.summary(level), mcse))
-    (a, mcse_a), (b, mcse_b) = tables
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = (a["posterior_mean"] - b["posterior_mean"]).to_numpy() / np.hypot(mcse_a, mcse_b)
-    z = np.where(np.isfinite(z), z, 0.0)
-    table = pd.DataFrame(
-        {
-            "group": a["group"],
-            "mean_reference": a["posterior_mean"],
-            "mean_sampled": b["posterior_mean"],
-            "mcse": np.hypot(mcse_a, mcse_b),
-            "z": z,
-            "lower_difference": b["lower"] - a["lower"],
-            "upper_difference": b["upper"] - a["upper"],
-        }
-    )
-    run.tables["verification"] = table
-    within = float(np.mean(np.abs(z) <= 4))
-    return {
-        "what": "two independent MCMC runs (no exact engine for this model)",
         "groups": int(len(table)),
         "share_within_4_mcse": within,
         "max_abs_z": float(np.max(np.abs(z))),
