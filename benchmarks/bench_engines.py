@@ -29,7 +29,7 @@ def simulate(groups: int, seed: int = 0):
 
 
 def run_exact(groups: int) -> dict:
-    from models import BetaBinomial, GroupCounts
+    from workbench.models import BetaBinomial, GroupCounts
 
     y, n = simulate(groups)
     counts = GroupCounts([f"g{i}" for i in range(groups)], y, n)

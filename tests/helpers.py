@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from models import GroupCounts
+from workbench.models import GroupCounts
 
 
 def simulate(groups=40, mean=0.2, concentration=30.0, trials=(5, 300), seed=0):

@@ -5,7 +5,11 @@ The public API lives in :mod:`workbench.api`; the command line in :mod:`workbenc
 
 from __future__ import annotations
 
-from models import (
+from ._layer import load_model_layer
+
+load_model_layer()  # the repository's models/ folder, importable only as workbench.models
+
+from .models import (  # noqa: E402
     BetaBinomial,
     CompletePooling,
     ConvergenceWarning,
@@ -18,7 +22,7 @@ from models import (
     WorkbenchError,
 )
 
-from .api import Run, RunFolder, fit, load_groups, open_run, write_run
+from .api import Run, RunFolder, fit, load_groups, open_run, write_run  # noqa: E402
 
 __all__ = [
     "BetaBinomial",

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from models import (
+from workbench.models import (
     MODELS,
     SUMMARY_COLUMNS,
     ConvergenceWarning,
@@ -560,7 +560,7 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
 
 def _consistent(folder: RunFolder) -> RunFolder:
     """The folder, or DataError when run.json and posterior.nc disagree about the data."""
-    from models import counts_of
+    from workbench.models import counts_of
 
     said = (folder.record.get("input") or {}).get("fingerprint")
     stored = attr(folder.idata, "data_fingerprint")

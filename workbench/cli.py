@@ -11,7 +11,7 @@ import sys
 import warnings
 from pathlib import Path
 
-from models import MODELS, ConvergenceWarning, WorkbenchError
+from workbench.models import MODELS, ConvergenceWarning, WorkbenchError
 
 from . import api, predict, ranking
 from .comparison import format_comparison

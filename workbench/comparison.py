@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from models import DataError, attr
+from workbench.models import DataError, attr
 
 from . import _io
 from .ppc import CheckSettings, GroupLoo, leave_one_group_out

@@ -70,9 +70,9 @@ import pandas as pd
 import xarray as xr
 from scipy import special, stats
 
-from models import ParameterError, attr, counts_of, log_likelihood_arrays
-from models._grid import HyperPrior, fit_grid
-from models._posterior import logit_means
+from workbench.models import ParameterError, attr, counts_of, log_likelihood_arrays
+from workbench.models._grid import HyperPrior, fit_grid
+from workbench.models._posterior import logit_means
 
 from . import _io
 

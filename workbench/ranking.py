@@ -45,7 +45,7 @@ import numpy as np
 import pandas as pd
 from scipy import special, stats
 
-from models import DataError, ParameterError, closed_form
+from workbench.models import DataError, ParameterError, closed_form
 
 from . import _io
 

@@ -36,7 +36,7 @@ import pandas as pd
 from jinja2 import Environment, StrictUndefined
 from markupsafe import Markup
 
-from models import DataError, versions
+from workbench.models import DataError, versions
 
 from . import _io, _report_page, plots
 

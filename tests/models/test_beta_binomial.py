@@ -7,9 +7,9 @@ import pytest
 from helpers import simulate
 from scipy import integrate, special, stats
 
-from models import BetaBinomial, GroupCounts, HyperPrior
-from models._grid import _log_prior, fit_grid
-from models._mixture import BetaMixturePosteriors
+from workbench.models import BetaBinomial, GroupCounts, HyperPrior
+from workbench.models._grid import _log_prior, fit_grid
+from workbench.models._mixture import BetaMixturePosteriors
 
 
 @pytest.mark.reference

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from models import (
+from workbench.models import (
     SUMMARY_COLUMNS,
     BetaBinomial,
     CompletePooling,
@@ -76,7 +76,7 @@ def test_bad_level_and_target(small_counts):
 
 
 def test_group_counts_validation():
-    from models import DataError
+    from workbench.models import DataError
 
     with pytest.raises(DataError, match="group 'b': successes=5 exceeds trials=4"):
         GroupCounts(["a", "b"], [1, 5], [2, 4])

@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 from scipy import integrate, special, stats
 
-from models import GroupCounts, LogitNormal, ParameterError
-from models._logit import centred_mask, population_rates, standardise
-from models._posterior import make_idata
+from workbench.models import GroupCounts, LogitNormal, ParameterError
+from workbench.models._logit import centred_mask, population_rates, standardise
+from workbench.models._posterior import make_idata
 
 
 def _idata(m, sigma, y, n):
@@ -25,7 +25,7 @@ def _idata(m, sigma, y, n):
 @pytest.mark.parametrize(("m", "sigma"), [(-1.0, 0.5), (0.3, 2.0), (-3.0, 0.05)])
 def test_group_integrated_likelihood_matches_scipy_quad(m, sigma):
     # reference library: scipy.integrate.quad of Binomial(y | n, expit(m + sigma z)) N(z)
-    from models import log_likelihood_arrays
+    from workbench.models import log_likelihood_arrays
 
     y = np.array([0, 3, 50, 900])
     n = np.array([5, 10, 100, 1000])
@@ -77,7 +77,7 @@ def test_covariates_only_with_a_model_that_uses_them(tmp_path):
 
 
 def test_covariate_errors_name_the_row(tmp_path):
-    from models import DataError
+    from workbench.models import DataError
     from workbench.data import load_groups
 
     path = tmp_path / "d.csv"

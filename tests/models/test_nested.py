@@ -8,11 +8,11 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from models import GroupCounts, Nested, ParameterError
+from workbench.models import GroupCounts, Nested, ParameterError
 
 
 def test_parent_column_checks(tmp_path):
-    from models import DataError
+    from workbench.models import DataError
     from workbench.data import load_groups
 
     path = tmp_path / "d.csv"

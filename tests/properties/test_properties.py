@@ -10,7 +10,7 @@ hypothesis = pytest.importorskip("hypothesis")
 from hypothesis import HealthCheck, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 
-from models import BetaBinomial, DataError, GroupCounts, NoPooling  # noqa: E402
+from workbench.models import BetaBinomial, DataError, GroupCounts, NoPooling  # noqa: E402
 from workbench.data import load_groups  # noqa: E402
 
 cell = st.one_of(

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from models import GroupCounts
+from workbench.models import GroupCounts
 from workbench import api
 from workbench.data import LoadedData
 

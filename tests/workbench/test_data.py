@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from models import DataError
+from workbench.models import DataError
 from workbench.data import load_groups
 
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from models import BetaBinomial, GroupCounts
-from models._posterior import make_idata
+from workbench.models import BetaBinomial, GroupCounts
+from workbench.models._posterior import make_idata
 from workbench.diagnostics import (
     NOT_READY,
     READY,

@@ -15,9 +15,9 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from models import DataError, GroupCounts, ParameterError, make_model
-from models._grid import HyperPrior, fit_grid
-from models._posterior import make_idata
+from workbench.models import DataError, GroupCounts, ParameterError, make_model
+from workbench.models._grid import HyperPrior, fit_grid
+from workbench.models._posterior import make_idata
 from workbench import api, cli, ppc
 from workbench.comparison import (
     COLUMNS,

@@ -13,7 +13,7 @@ import pytest
 from helpers import simulate
 from scipy import stats
 
-from models import NoPooling
+from workbench.models import NoPooling
 from workbench import cli, predict
 
 

@@ -13,8 +13,8 @@ import pytest
 from helpers import simulate
 from scipy import integrate, stats
 
-from models import BetaBinomial, CompletePooling, NoPooling
-from models._mixture import BetaPosteriors
+from workbench.models import BetaBinomial, CompletePooling, NoPooling
+from workbench.models._mixture import BetaPosteriors
 from workbench import api, cli, ranking
 
 
@@ -318,7 +318,7 @@ def test_trials_needed_statuses():
     ],
 )
 def test_bad_options_name_the_setting(kwargs, match):
-    from models import ParameterError
+    from workbench.models import ParameterError
 
     with pytest.raises(ParameterError, match=match):
         ranking.rank_options(**kwargs)
@@ -420,7 +420,7 @@ def test_cli_rank_rewrites_folder(folders, model, capsys):
     assert set(est["target_flag"].fillna("")) <= {"above target", "below target", ""}
     # the closed forms are rebuilt from posterior.nc: same as the model's own summary
     idata = api.open_run(folder).idata
-    from models import closed_form
+    from workbench.models import closed_form
 
     np.testing.assert_allclose(est["prob_above_target"], closed_form(idata).sf(0.25), rtol=1e-9)
     assert "ranks.csv" in record["files"]
