@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from workbench.models import (
+from .models import (
     MODELS,
     SUMMARY_COLUMNS,
     ConvergenceWarning,
@@ -28,10 +28,11 @@ from workbench.models import (
     versions,
 )
 
-from . import _io, ranking
-from .data import LoadedData, load_groups
-from .diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
-from .ppc import CheckSettings, attach_checks
+from .analysis import ranking
+from .io import atomic as _io
+from .io.inputs import LoadedData, load_groups
+from .analysis.diagnostics import Diagnostics, Thresholds, diagnose, first_remedy_settings
+from .analysis.checks import CheckSettings, attach_checks
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
@@ -507,7 +508,7 @@ def format_written(run: Run, out: Path) -> str:
 
 def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
     """The terminal summary of a fit: what was fitted, population, extremes, verdict."""
-    from .diagnostics import format_diagnostics
+    from .analysis.diagnostics import format_diagnostics
 
     rec = run.loaded.reconciliation
     idata = run.idata
@@ -560,7 +561,7 @@ def format_fit(run: Run, out: Path | None = None, *, rows: int = 5) -> str:
 
 def _consistent(folder: RunFolder) -> RunFolder:
     """The folder, or DataError when run.json and posterior.nc disagree about the data."""
-    from workbench.models import counts_of
+    from .models import counts_of
 
     said = (folder.record.get("input") or {}).get("fingerprint")
     stored = attr(folder.idata, "data_fingerprint")
@@ -577,7 +578,7 @@ def _consistent(folder: RunFolder) -> RunFolder:
 def check_folder(path: str | Path, settings: CheckSettings | None = None):
     """Run the checks on a run folder and write checks.json, ppc_statistics.csv and
     group_checks.csv into it (atomically). Returns ``(RunFolder, Checks)``."""
-    from .ppc import check_posterior, write_checks
+    from .analysis.checks import check_posterior, write_checks
 
     folder = _consistent(open_run(path))
     checks = check_posterior(folder.idata, settings)
@@ -595,7 +596,7 @@ def compare_folders(paths, out: str | Path | None = None, settings: CheckSetting
 
     Runs are labelled by folder name (by path where names repeat).
     """
-    from .comparison import compare_posteriors, write_comparison
+    from .analysis.comparison import compare_posteriors, write_comparison
 
     paths = [Path(p) for p in paths]
     seen: dict[Path, Path] = {}
@@ -634,7 +635,7 @@ def fit_and_compare(
     the whole folder is replaced in one move (an earlier comparison folder or an empty one).
     ``options`` are :func:`fit`'s. Returns ``(runs by model, Comparison)``.
     """
-    from .comparison import COMPARISON_FILE, compare_posteriors, write_comparison
+    from .analysis.comparison import COMPARISON_FILE, compare_posteriors, write_comparison
 
     models = list(models)
     unknown = [m for m in models if m not in MODELS]
@@ -674,7 +675,7 @@ def write_report(path: str | Path, **options):
     ``options`` are :func:`workbench.report.write_report`'s (``table_rows``). Returns its
     :class:`workbench.report.Report` (path, figures, seconds, bytes).
     """
-    from .report import write_report as _write_report
+    from .report.render import write_report as _write_report
 
     return _write_report(path, **options)
 

@@ -66,7 +66,7 @@ def test_constant_covariate_is_refused():
 
 def test_covariates_only_with_a_model_that_uses_them(tmp_path):
     from workbench import api
-    from workbench.data import load_groups
+    from workbench.io.inputs import load_groups
 
     path = tmp_path / "d.csv"
     path.write_text("group,successes,trials,mix\na,1,5,0.2\nb,2,5,0.4\nc,3,9,0.1\n")
@@ -78,7 +78,7 @@ def test_covariates_only_with_a_model_that_uses_them(tmp_path):
 
 def test_covariate_errors_name_the_row(tmp_path):
     from workbench.models import DataError
-    from workbench.data import load_groups
+    from workbench.io.inputs import load_groups
 
     path = tmp_path / "d.csv"
     path.write_text("group,successes,trials,mix\na,1,5,0.2\nb,2,5,high\n")

@@ -13,7 +13,7 @@ from workbench.models import GroupCounts, Nested, ParameterError
 
 def test_parent_column_checks(tmp_path):
     from workbench.models import DataError
-    from workbench.data import load_groups
+    from workbench.io.inputs import load_groups
 
     path = tmp_path / "d.csv"
     path.write_text("shop,ok,n,area\na,1,5,N\nb,2,5,S\na,1,5,N\n")
@@ -29,7 +29,7 @@ def test_parent_column_checks(tmp_path):
 
 def test_nested_needs_parents_and_parents_need_nested(tmp_path):
     from workbench import api
-    from workbench.data import load_groups
+    from workbench.io.inputs import load_groups
 
     counts = GroupCounts(["a", "b"], [1, 2], [5, 5])
     with pytest.raises(ParameterError, match="needs each group's parent"):

@@ -6,7 +6,7 @@ import numpy as np
 
 from workbench.models import GroupCounts
 from workbench import api
-from workbench.data import LoadedData
+from workbench.io.inputs import LoadedData
 
 
 def _loaded(y, n):

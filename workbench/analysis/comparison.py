@@ -27,10 +27,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from workbench.models import DataError, attr
+from ..models import DataError, attr
 
-from . import _io
-from .ppc import CheckSettings, GroupLoo, leave_one_group_out
+from ..io import atomic as _io
+from .checks import CheckSettings, GroupLoo, leave_one_group_out
 
 COMPARISON_FILE = "comparison.json"
 COMPARISON_TABLE = "comparison.csv"

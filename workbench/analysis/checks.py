@@ -70,11 +70,11 @@ import pandas as pd
 import xarray as xr
 from scipy import special, stats
 
-from workbench.models import ParameterError, attr, counts_of, log_likelihood_arrays
-from workbench.models._grid import HyperPrior, fit_grid
-from workbench.models._posterior import logit_means
+from ..models import ParameterError, attr, counts_of, log_likelihood_arrays
+from ..models._grid import HyperPrior, fit_grid
+from ..models._posterior import logit_means
 
-from . import _io
+from ..io import atomic as _io
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)

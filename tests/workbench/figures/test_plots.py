@@ -11,7 +11,7 @@ import pytest
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
-from workbench import plots
+from workbench.figures import plots
 
 matplotlib.use("Agg")
 

@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from workbench.models import DataError, GroupCounts
-from workbench.models.exceptions import join_problems
+from ..models import DataError, GroupCounts
+from ..models.exceptions import join_problems
 
 TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
 FALSE_WORDS = {"0", "false", "f", "no", "n", "failure", "0.0"}

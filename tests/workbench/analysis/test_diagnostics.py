@@ -7,7 +7,7 @@ import pytest
 
 from workbench.models import BetaBinomial, GroupCounts
 from workbench.models._posterior import make_idata
-from workbench.diagnostics import (
+from workbench.analysis.diagnostics import (
     NOT_READY,
     READY,
     Thresholds,

@@ -18,8 +18,9 @@ from scipy import stats
 from workbench.models import DataError, GroupCounts, ParameterError, make_model
 from workbench.models._grid import HyperPrior, fit_grid
 from workbench.models._posterior import make_idata
-from workbench import api, cli, ppc
-from workbench.comparison import (
+from workbench import api, cli
+from workbench.analysis import checks as ppc
+from workbench.analysis.comparison import (
     COLUMNS,
     COMPARISON_FILE,
     COMPARISON_TABLE,
@@ -495,7 +496,7 @@ def test_cli_compare_fits_several_models(folders, tmp_path, capsys):
 
 
 def test_comparison_folder_replaced_whole_only_if_it_is_one(tmp_path):
-    from workbench import _io
+    from workbench.io import atomic as _io
 
     out = tmp_path / "cmp"
     _io.replace_folder(out, lambda f: (f / COMPARISON_FILE).write_text("{}"),

@@ -36,9 +36,11 @@ import pandas as pd
 from jinja2 import Environment, StrictUndefined
 from markupsafe import Markup
 
-from workbench.models import DataError, versions
+from ..models import DataError, versions
 
-from . import _io, _report_page, plots
+from ..figures import plots
+from ..io import atomic as _io
+from . import page as _report_page
 
 REPORT_FILE = "report.html"
 FIGURES_DIR = "figures"

@@ -11,12 +11,14 @@ import sys
 import warnings
 from pathlib import Path
 
-from workbench.models import MODELS, ConvergenceWarning, WorkbenchError
+from ..models import MODELS, ConvergenceWarning, WorkbenchError
 
-from . import api, predict, ranking
-from .comparison import format_comparison
-from .ppc import CheckSettings, format_checks
-from .report import format_report
+from .. import api
+from ..analysis import predictions as predict
+from ..analysis import ranking
+from ..analysis.comparison import format_comparison
+from ..analysis.checks import CheckSettings, format_checks
+from ..report.render import format_report
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
 

@@ -16,7 +16,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from workbench import api, report
+from workbench import api
+from workbench.report import render as report
 from workbench.cli import build_parser, main
 
 XSS = "<script>alert(1)</script>"
@@ -116,7 +117,7 @@ def test_figures_are_png_files_written_whole(run_folder):
 def test_figure_files_keep_the_palette_colours(run_folder):
     from PIL import Image
 
-    from workbench.plots import PALETTE
+    from workbench.figures.plots import PALETTE
 
     with Image.open(run_folder / report.FIGURES_DIR / "ranks.png") as im:
         pixels = np.asarray(im.convert("RGB")).reshape(-1, 3).astype(int)

@@ -15,7 +15,8 @@ from scipy import integrate, stats
 
 from workbench.models import BetaBinomial, CompletePooling, NoPooling
 from workbench.models._mixture import BetaPosteriors
-from workbench import api, cli, ranking
+from workbench import api, cli
+from workbench.analysis import ranking
 
 
 def _inp(model, counts) -> ranking.RankInput:

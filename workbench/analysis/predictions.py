@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import _io
+from ..io import atomic as _io
 from .ranking import NEW_GROUP_LABEL, check_fraction, check_whole, update_record
 
 PREDICTIONS_FILE = "predictions.csv"
@@ -134,7 +134,7 @@ def predict_folder(path, *, trials, level=None, seed=None) -> Prediction:
 
     ``level`` defaults to the run's level; ``seed`` to one past the run's recorded seed.
     """
-    from .api import open_run
+    from ..api import open_run
 
     trials = check_whole(trials, "trials")
     folder = open_run(path)

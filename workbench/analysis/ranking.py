@@ -45,9 +45,9 @@ import numpy as np
 import pandas as pd
 from scipy import special, stats
 
-from workbench.models import DataError, ParameterError, closed_form
+from ..models import DataError, ParameterError, closed_form
 
-from . import _io
+from ..io import atomic as _io
 
 BETTER = ("higher", "lower")
 DEFAULT_TOP = 5
@@ -1001,7 +1001,7 @@ def rank_folder(
     and trials_needed.csv; replaces the rank and target columns of estimates.csv; records the
     settings in run.json under "ranking".
     """
-    from .api import open_run
+    from ..api import open_run
 
     folder = open_run(path)
     settings = folder.record.get("settings", {})

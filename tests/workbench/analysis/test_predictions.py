@@ -14,7 +14,8 @@ from helpers import simulate
 from scipy import stats
 
 from workbench.models import NoPooling
-from workbench import cli, predict
+from workbench import cli
+from workbench.analysis import predictions as predict
 
 
 @pytest.fixture(scope="module")

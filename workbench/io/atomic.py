@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from workbench.models import DataError
+from ..models import DataError
 
 
 def _default(o):

@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 import pandas as pd
 
-from workbench.models import attr
+from ..models import attr
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)

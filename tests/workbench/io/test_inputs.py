@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from workbench.models import DataError
-from workbench.data import load_groups
+from workbench.io.inputs import load_groups
 
 
 def write(tmp_path, text, name="data.csv"):
