@@ -1,0 +1,312 @@
+"""Palette, layout and text helpers shared by every figure: no statistics here.
+
+Figures are built on :class:`matplotlib.figure.Figure` directly, so they render on the Agg
+canvas whatever the session's backend is, and no pyplot state is kept.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+from matplotlib.axes import Axes
+from matplotlib.collections import LineCollection
+from matplotlib.figure import Figure
+from matplotlib.transforms import ScaledTranslation
+
+#: The workbench palette: chosen so every pair stays apart (CIELAB distance >= 18) under
+#: simulated protan, deutan and tritan colour vision; meaning is also carried by marker
+#: shape and line style, never by colour alone.
+PALETTE = {
+    "ink": "#1d2833",  # text, estimates, the benchmark
+    "harbour": "#1f6aa5",  # main series; the best-placed groups
+    "ochre": "#e39b2d",  # target; the worst-placed groups; outside the 95% limits
+    "mulberry": "#a8325e",  # outside the 99.8% limits; the observed value of a check
+    "pewter": "#7c8893",  # context: observed rates, the squeezed band, limits
+    "mint": "#9fd6c6",  # light fill
+    "mist": "#e6ebef",  # lightest fill
+}
+
+#: chain colours for the mixing views
+CHAIN_COLOURS = ("#1f6aa5", "#e39b2d", "#a8325e", "#5a9e8f", "#7c8893", "#1d2833")
+
+_STYLE = {
+    "axes.titlesize": 10.5,
+    "axes.labelsize": 9.0,
+    "axes.edgecolor": "#9aa6b0",
+    "xtick.color": "#4a5762",
+    "xtick.labelsize": 8.0,
+    "grid.color": "#dfe5ea",
+    "grid.linewidth": 0.6,
+}
+
+#: longest group label drawn on a figure (the tables keep the full name)
+LABEL_CHARS = 26
+
+NOT_COMPUTED = "not computed for this run"
+
+
+# ---------------------------------------------------------------------------------------------
+# helpers: layout and text, no statistics
+
+
+def _new_axes(ax: Axes | None, size: tuple[float, float]) -> Axes:
+    if ax is not None:
+        return ax
+    fig = Figure(figsize=size, layout="constrained", dpi=110)
+    return fig.add_subplot()
+
+
+def _apply_style(ax: Axes) -> None:
+    ax.set_facecolor("white")
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    for side in ("left", "bottom"):
+        ax.spines[side].set_color(_STYLE["axes.edgecolor"])
+    ax.tick_params(colors=_STYLE["xtick.color"], labelsize=_STYLE["xtick.labelsize"])
+    for label in (ax.xaxis.label, ax.yaxis.label):
+        label.set_color(PALETTE["ink"])
+        label.set_size(_STYLE["axes.labelsize"])
+    ax.grid(True, axis="both", color=_STYLE["grid.color"], linewidth=_STYLE["grid.linewidth"])
+    ax.set_axisbelow(True)
+
+
+def _title(ax: Axes, text: str) -> None:
+    ax.set_title(
+        text, loc="left", fontsize=_STYLE["axes.titlesize"], fontweight="bold", color=PALETTE["ink"]
+    )
+
+
+def text_label(name: object, limit: int = LABEL_CHARS) -> str:
+    """A user-supplied name made safe to draw: shortened, and ``$`` never starts mathtext."""
+    s = str(name).replace("\n", " ")
+    if len(s) > limit:
+        s = s[: limit - 1] + "\u2026"
+    return s.replace("$", r"\$")
+
+
+def _count(n: int) -> str:
+    return f"{n:,}"
+
+
+def _require(table: pd.DataFrame, columns: Sequence[str], what: str) -> None:
+    missing = [c for c in columns if c not in table.columns]
+    if missing:
+        raise ValueError(f"{what} needs columns {missing}; found {list(table.columns)}.")
+
+
+def row_positions(
+    n: int, show: int, *, every: int = 70, band: float = 8.0
+) -> tuple[np.ndarray, tuple | None]:
+    """Vertical places for ``n`` ordered rows.
+
+    Up to ``every`` rows (or ``2 * show + 12``, if more): one row each. Beyond that: the first
+    and the last ``show`` rows one row each, the rows between them spread in order over a band
+    ``band`` rows high. Returns the positions and the band's (top, bottom) or None.
+    """
+    if n <= max(every, 2 * show + 12):
+        return np.arange(n, dtype=float), None
+    pos = np.empty(n)
+    pos[:show] = np.arange(show)
+    top = show + 0.6
+    pos[show : n - show] = np.linspace(top, top + band, n - 2 * show)
+    pos[n - show :] = top + band + 1.0 + np.arange(show)
+    return pos, (top - 0.4, top + band + 0.4)
+
+
+def _labelled(n: int, band: tuple | None, show: int) -> np.ndarray:
+    idx = np.arange(n)
+    if band is None:
+        return idx
+    return np.concatenate([idx[:show], idx[n - show :]])
+
+
+def _band_note(ax: Axes, band: tuple | None, hidden: int, what: str = "groups") -> None:
+    if band is None:
+        return
+    ax.axhspan(band[0], band[1], color=PALETTE["mist"], zorder=0, linewidth=0)
+    note = f"{_count(hidden)} {what} between,\nin order, unlabelled"
+    ax.text(
+        0.995,
+        (band[0] + band[1]) / 2,
+        note,
+        transform=ax.get_yaxis_transform(),
+        ha="right",
+        va="center",
+        fontsize=7.5,
+        color="#4a5762",
+        style="italic",
+    )
+
+
+def _row_labels(ax: Axes, pos: np.ndarray, names: Sequence, idx: np.ndarray) -> None:
+    ax.set_yticks(pos[idx], labels=[text_label(names[i]) for i in idx])
+    ax.tick_params(axis="y", length=0, labelsize=7.5 if len(idx) > 30 else 8.0)
+    ax.grid(False, axis="y")
+
+
+def _legend_below(ax: Axes, handles: list | None = None, *, ncols: int = 4) -> None:
+    """The legend under the x-axis label, where it can hide no data."""
+    below = ax.transAxes + ScaledTranslation(0, -34 / 72, ax.get_figure().dpi_scale_trans)
+    ax.legend(
+        handles=handles,
+        loc="upper center",
+        bbox_to_anchor=(0.5, 0.0),
+        bbox_transform=below,
+        ncols=ncols,
+        fontsize=7.5,
+        frameon=False,
+        handlelength=1.8,
+        columnspacing=1.4,
+    )
+
+
+def _spread_labels(
+    ax: Axes,
+    xs: Sequence[float],
+    ys: Sequence[float],
+    names: Sequence,
+    *,
+    gap: float = 9.5,
+    flip: bool = True,
+) -> None:
+    """Name points; labels that would collide are spread apart vertically around their
+    points (``gap`` points apart) with a thin leader line. With ``flip``, points in the right
+    quarter of the axes are named on their left; the others always on their right."""
+    if not len(xs):
+        return
+    fig = ax.get_figure()
+    height_pt = ax.get_position().height * fig.get_figheight() * 72
+    to_axes = ax.transScale + ax.transLimits  # data -> axes fraction, before layout
+    where = to_axes.transform(np.column_stack([np.asarray(xs, float), np.asarray(ys, float)]))
+    at = where[:, 1] * height_pt
+    left = (where[:, 0] > 0.75) & flip
+    for side in (False, True):
+        chosen = np.flatnonzero(left == side)
+        if not chosen.size:
+            continue
+        chosen = chosen[np.argsort(at[chosen], kind="stable")]
+        placed = _stack(at[chosen], gap)
+        for i, y in zip(chosen, placed, strict=True):
+            shift = y - at[i]
+            arrow = {"arrowstyle": "-", "color": "#9aa6b0", "linewidth": 0.5}
+            ax.annotate(
+                text_label(names[i]),
+                (xs[i], ys[i]),
+                xytext=(-7 if side else 7, shift),
+                textcoords="offset points",
+                fontsize=7.5,
+                color=PALETTE["ink"],
+                ha="right" if side else "left",
+                va="center",
+                zorder=4,
+                arrowprops=arrow if abs(shift) > 5 else None,
+                # a pale backing so reference lines never run through a name
+                bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.85},
+            )
+
+
+def _stack(wanted: np.ndarray, gap: float) -> np.ndarray:
+    """Positions at least ``gap`` apart, each run of crowded labels centred on its points."""
+    clusters: list[list[float]] = []  # each: the wanted positions of its members, in order
+    for y in wanted:
+        clusters.append([float(y)])
+        while len(clusters) > 1:
+            low, high = clusters[-2], clusters[-1]
+            low_top = np.mean(low) + (len(low) - 1) * gap / 2
+            high_bottom = np.mean(high) - (len(high) - 1) * gap / 2
+            if high_bottom - low_top >= gap:
+                break
+            clusters[-2:] = [low + high]
+    out = []
+    for members in clusters:
+        centre = np.mean(members)
+        out += [centre + (k - (len(members) - 1) / 2) * gap for k in range(len(members))]
+    return np.asarray(out)
+
+
+def _line_width(n: int) -> float:
+    return 2.2 if n <= 40 else 1.6 if n <= 200 else 0.6
+
+
+def _shown_rows(n: int, show: int, band: tuple | None) -> float:
+    return n if band is None else 2 * show + 10
+
+
+def _height(rows: float) -> float:
+    return float(min(max(2.8, 0.17 * rows + 1.6), 13.5))
+
+
+def not_computed(what: str, *, ax: Axes | None = None, why: str = NOT_COMPUTED) -> Axes:
+    """An empty panel that says ``what`` is not in this run."""
+    ax = _new_axes(ax, (5.0, 1.6))
+    ax.set_axis_off()
+    ax.text(
+        0.5,
+        0.5,
+        f"{what}: {why}",
+        ha="center",
+        va="center",
+        color="#4a5762",
+        transform=ax.transAxes,
+        style="italic",
+    )
+    return ax
+
+
+def _population_row(
+    population: pd.DataFrame | None, quantity: str, *, parameter: str | None = None
+) -> dict | None:
+    """The population table's row of a quantity (by its ``parameter`` name where given)."""
+    if population is None or "quantity" not in population.columns:
+        return None
+    rows = population[population["quantity"] == quantity]
+    if parameter is not None and "parameter" in population.columns:
+        by_name = population[population["parameter"] == parameter]
+        rows = by_name if len(by_name) else rows
+    if rows.empty:
+        return None
+    return rows.iloc[0].to_dict()
+
+
+def figure_of(artist: Axes | Figure) -> Figure:
+    """The Figure an Axes belongs to (or the Figure itself)."""
+    return artist if isinstance(artist, Figure) else artist.get_figure()
+
+
+def _draw_band(
+    ax: Axes,
+    lower: np.ndarray,
+    upper: np.ndarray,
+    centre: np.ndarray,
+    pos: np.ndarray,
+    mid: np.ndarray,
+    *,
+    colour: str,
+    alpha: float,
+) -> None:
+    """The squeezed rows between the labelled ones: thin interval lines and their centres."""
+    segments = np.stack([np.c_[lower[mid], pos[mid]], np.c_[upper[mid], pos[mid]]], axis=1)
+    ax.add_collection(
+        LineCollection(segments, colors=colour, linewidths=0.3, alpha=alpha, rasterized=True)
+    )
+    ax.plot(centre[mid], pos[mid], color=PALETTE["ink"], linewidth=0.8, rasterized=True)
+
+
+def _corner_note(ax: Axes, text: str, *, top: bool) -> None:
+    """A small note in the lower (or upper) right corner of the axes."""
+    ax.text(
+        0.99,
+        0.99 if top else 0.01,
+        text,
+        transform=ax.transAxes,
+        ha="right",
+        va="top" if top else "bottom",
+        fontsize=7.5,
+        color="#4a5762",
+    )
+
+
+def _suptitle(fig: Figure, text: str) -> None:
+    fig.suptitle(text, x=0.01, ha="left", fontsize=10, fontweight="bold", color=PALETTE["ink"])

@@ -1,0 +1,266 @@
+"""Shrinkage and interval figures of the estimates table: they draw, they compute nothing."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from matplotlib.axes import Axes
+
+from ._style import (
+    PALETTE,
+    _apply_style,
+    _band_note,
+    _corner_note,
+    _count,
+    _draw_band,
+    _height,
+    _labelled,
+    _legend_below,
+    _line_width,
+    _new_axes,
+    _population_row,
+    _require,
+    _row_labels,
+    _shown_rows,
+    _spread_labels,
+    _title,
+    row_positions,
+)
+
+# -- shrinkage ----------------------------------------------------------------------------------
+
+
+def plot_shrinkage(
+    estimates: pd.DataFrame,
+    population: pd.DataFrame | None = None,
+    *,
+    ax: Axes | None = None,
+    label: int = 4,
+) -> Axes:
+    """Observed rate against the estimate, one marker per group, area by trials.
+
+    Markers on the diagonal were not pulled at all; partial pooling moves small groups
+    towards the population mean (the horizontal line, from the population table). Groups
+    with no trials have no observed rate and are counted in a note instead of drawn.
+
+    Parameters
+    ----------
+    estimates : DataFrame
+        The estimates table: group, trials, observed_rate, posterior_mean.
+    population : DataFrame, optional
+        The population table; its ``population_mean`` row is drawn with its interval.
+    ax : Axes, optional
+    label : int, default=4
+        With more than 12 groups, the groups with the highest and the lowest estimates
+        that many each are named; with 12 or fewer, all are.
+    """
+    _require(estimates, ["group", "trials", "observed_rate", "posterior_mean"], "plot_shrinkage")
+    ax = _new_axes(ax, (6.4, 5.4))
+    _apply_style(ax)
+    drawn = estimates[estimates["observed_rate"].notna()]
+    n = len(drawn)
+    ax.plot(
+        [0, 1],
+        [0, 1],
+        color=PALETTE["pewter"],
+        linestyle=(0, (4, 3)),
+        linewidth=1.0,
+        label="no pooling (estimate = observed)",
+        zorder=1,
+    )
+    _population_line(ax, population)
+    _size_scatter(ax, drawn)
+    _square_limits(ax, drawn)
+    if n:
+        order = drawn.sort_values(["posterior_mean", "group"], ascending=[False, True])
+        named = order if n <= 12 else pd.concat([order.head(label), order.tail(label)])
+        _spread_labels(
+            ax,
+            named["observed_rate"].to_numpy(),
+            named["posterior_mean"].to_numpy(),
+            named["group"].to_list(),
+        )
+    ax.set_xlabel("observed rate (successes / trials)")
+    ax.set_ylabel("estimate (posterior mean)")
+    _title(ax, f"Shrinkage: observed rate \u2192 estimate ({_count(n)} groups)")
+    missing = len(estimates) - n
+    if missing:
+        _corner_note(ax, f"{_count(missing)} group(s) with no trials not drawn", top=False)
+    ax.legend(loc="upper left", fontsize=7.5, scatterpoints=1, labelspacing=0.9, borderaxespad=0.6)
+    return ax
+
+
+def _population_line(ax: Axes, population: pd.DataFrame | None) -> None:
+    pop = _population_row(population, "population_mean")
+    if pop is None:
+        return
+    ax.axhspan(pop["lower"], pop["upper"], color=PALETTE["mint"], alpha=0.35, linewidth=0, zorder=0)
+    ax.axhline(
+        pop["mean"],
+        color=PALETTE["ochre"],
+        linewidth=1.6,
+        zorder=2,
+        label=f"population mean {pop['mean']:.3f} (band: its interval)",
+    )
+
+
+def _size_scatter(ax: Axes, drawn: pd.DataFrame) -> None:
+    """The groups as markers whose area grows with trials, and a legend of round sizes."""
+    n = len(drawn)
+    trials = drawn["trials"].to_numpy(dtype=float)
+    biggest = float(trials.max()) if n else 1.0
+    scale = 160.0 if n <= 100 else 60.0 if n <= 1000 else 18.0
+    ax.scatter(
+        drawn["observed_rate"],
+        drawn["posterior_mean"],
+        s=6.0 + scale * np.sqrt(trials / max(biggest, 1.0)),
+        color=PALETTE["harbour"],
+        alpha=0.85 if n <= 200 else 0.45 if n <= 2000 else 0.25,
+        edgecolors="white" if n <= 2000 else "none",
+        linewidths=0.6,
+        zorder=3,
+        rasterized=n > 2000,
+    )
+    for ref in _size_steps(biggest):
+        ax.scatter(
+            [],
+            [],
+            s=6.0 + scale * math.sqrt(ref / max(biggest, 1.0)),
+            color=PALETTE["harbour"],
+            alpha=0.6,
+            label=f"{_count(int(ref))} trials",
+        )
+
+
+def _square_limits(ax: Axes, drawn: pd.DataFrame) -> None:
+    """The same range on both axes, around every drawn value, within [0, 1]."""
+    if len(drawn):
+        lo = float(np.nanmin([drawn["observed_rate"].min(), drawn["posterior_mean"].min()]))
+        hi = float(np.nanmax([drawn["observed_rate"].max(), drawn["posterior_mean"].max()]))
+    else:
+        lo, hi = 0.0, 1.0
+    pad = 0.04 * max(hi - lo, 0.05)
+    ax.set_xlim(max(0.0, lo - pad), min(1.0, hi + pad))
+    ax.set_ylim(max(0.0, lo - pad), min(1.0, hi + pad))
+
+
+def _size_steps(biggest: float) -> list[float]:
+    """Round trial counts (1, 10, 100, ...) for the size legend, largest three below the top."""
+    if biggest < 1:
+        return []
+    top = 10 ** math.floor(math.log10(biggest))
+    return [s for s in (top / 100, top / 10, top) if s >= 1]
+
+
+# -- intervals ----------------------------------------------------------------------------------
+
+
+def plot_intervals(
+    estimates: pd.DataFrame,
+    *,
+    target: float | None = None,
+    level: float | None = None,
+    ax: Axes | None = None,
+    show: int = 15,
+    every: int = 70,
+) -> Axes:
+    """Every group's estimate and interval, ordered from the highest estimate down.
+
+    Parameters
+    ----------
+    estimates : DataFrame
+        The estimates table: group, posterior_mean, lower, upper (observed_rate if present).
+    target : float, optional
+        A target rate, drawn as a vertical line.
+    level : float, optional
+        The interval mass, for the axis label.
+    ax : Axes, optional
+    show : int, default=15
+        With more than ``every`` groups, the highest and the lowest ``show`` are labelled and
+        the rest squeezed in order into a band between them.
+    every : int, default=70
+        Up to this many groups, every one gets a labelled row.
+    """
+    _require(estimates, ["group", "posterior_mean", "lower", "upper"], "plot_intervals")
+    table = estimates.sort_values(["posterior_mean", "group"], ascending=[False, True])
+    n = len(table)
+    pos, band = row_positions(n, show, every=every)
+    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
+    _apply_style(ax)
+    lower = table["lower"].to_numpy(dtype=float)
+    upper = table["upper"].to_numpy(dtype=float)
+    mean = table["posterior_mean"].to_numpy(dtype=float)
+    idx = _labelled(n, band, show)
+    if band is not None:
+        mid = np.arange(show, n - show)
+        _draw_band(
+            ax,
+            lower,
+            upper,
+            mean,
+            pos,
+            mid,
+            colour=PALETTE["harbour"],
+            alpha=min(0.5, 30 / len(mid)),
+        )
+    _labelled_intervals(ax, table, pos, idx, level=level)
+    if target is not None:
+        ax.axvline(
+            target,
+            color=PALETTE["ochre"],
+            linestyle=(0, (5, 2)),
+            linewidth=1.6,
+            label=f"target {target:g}",
+            zorder=2,
+        )
+    _row_labels(ax, pos, table["group"].astype(str).to_list(), idx)
+    _band_note(ax, band, n - 2 * show)
+    ax.set_ylim(pos[-1] + 0.8 if n else 1, -0.8)
+    ax.set_xlim(
+        max(0.0, float(np.nanmin(lower)) - 0.02) if n else 0,
+        min(1.0, float(np.nanmax(upper)) + 0.02) if n else 1,
+    )
+    ax.set_xlabel(f"rate: estimate and {level:.0%} interval" if level else "rate")
+    shown = "all" if band is None else f"highest and lowest {show} of"
+    _title(ax, f"Estimates, ordered ({shown} {_count(n)} groups)")
+    _legend_below(ax)
+    return ax
+
+
+def _labelled_intervals(
+    ax: Axes, table: pd.DataFrame, pos: np.ndarray, idx: np.ndarray, *, level: float | None
+) -> None:
+    """Interval bars, estimate dots and observed-rate ticks of the labelled rows."""
+    ax.hlines(
+        pos[idx],
+        table["lower"].to_numpy(dtype=float)[idx],
+        table["upper"].to_numpy(dtype=float)[idx],
+        color=PALETTE["harbour"],
+        linewidth=_line_width(len(idx)),
+        label=f"{level:.0%} interval" if level else "interval",
+    )
+    ax.plot(
+        table["posterior_mean"].to_numpy(dtype=float)[idx],
+        pos[idx],
+        "o",
+        color=PALETTE["ink"],
+        markersize=4 if len(table) <= 200 else 3,
+        label="estimate (posterior mean)",
+        zorder=3,
+    )
+    if "observed_rate" in table.columns:
+        ax.plot(
+            table["observed_rate"].to_numpy(dtype=float)[idx],
+            pos[idx],
+            "|",
+            color=PALETTE["mulberry"],
+            markersize=7,
+            markeredgewidth=1.4,
+            label="observed rate",
+            zorder=3,
+        )
+
+
+__all__ = ["plot_intervals", "plot_shrinkage"]
