@@ -24,6 +24,7 @@ with warnings.catch_warnings():
     import arviz as az
 
 from ._data import GroupCounts
+from ._stats import betabinom_logpmf, log_choose
 
 #: Largest draws x groups array stored in memory for a log-likelihood (float64 cells).
 LOG_LIKELIHOOD_CELLS = 40_000_000
@@ -154,22 +155,22 @@ def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
     y = data.successes.astype(float)
     n = data.trials.astype(float)
     th = idata.posterior["theta"].transpose("chain", "draw", "group").values
-    log_choose = special.gammaln(n + 1) - special.gammaln(y + 1) - special.gammaln(n - y + 1)
+    lc = log_choose(n, y)
     with np.errstate(divide="ignore", invalid="ignore"):
-        cond = log_choose + special.xlogy(y, th) + special.xlog1py(n - y, -th)
+        cond = lc + special.xlogy(y, th) + special.xlog1py(n - y, -th)
     model = attr(idata, "model")
     if model == "beta-binomial":
         mu = idata.posterior["mu"].values[..., None]
         kappa = idata.posterior["kappa"].values[..., None]
         a = mu * kappa
         b = (1 - mu) * kappa
-        integrated = log_choose + special.betaln(y + a, n - y + b) - special.betaln(a, b)
+        integrated = betabinom_logpmf(y, n, a, b)
     elif model in ("logit-normal", "nested"):
-        integrated = _logit_normal_integrated(idata, y, n, log_choose)
+        integrated = _logit_normal_integrated(idata, y, n, lc)
     elif model == "no-pooling":
         prior = attr(idata, "priors")
         a, b = prior["a"], prior["b"]
-        one = log_choose + special.betaln(y + a, n - y + b) - special.betaln(a, b)
+        one = betabinom_logpmf(y, n, a, b)
         integrated = np.broadcast_to(one, th.shape).copy()
     else:
         integrated = cond.copy()

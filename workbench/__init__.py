@@ -9,6 +9,7 @@ from ._layer import load_model_layer
 
 load_model_layer()  # the repository's models/ folder, importable only as workbench.models
 
+from .api import fit, load_groups, open_run, write_run  # noqa: E402
 from .models import (  # noqa: E402
     BetaBinomial,
     CompletePooling,
@@ -21,8 +22,7 @@ from .models import (  # noqa: E402
     SamplingError,
     WorkbenchError,
 )
-
-from .api import Run, RunFolder, fit, load_groups, open_run, write_run  # noqa: E402
+from .results import Run, RunFolder  # noqa: E402
 
 __all__ = [
     "BetaBinomial",

@@ -22,19 +22,12 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from ..models import DataError, attr
-
-from ..io import atomic as _io
 from .checks import CheckSettings, GroupLoo, leave_one_group_out
-
-COMPARISON_FILE = "comparison.json"
-COMPARISON_TABLE = "comparison.csv"
-POINTWISE_TABLE = "comparison_pointwise.csv"
 
 #: Columns of comparison.csv, in order.
 COLUMNS = [
@@ -89,7 +82,6 @@ class Comparison:
             "models": self.table.replace({np.nan: None}).to_dict(orient="records"),
             "readings": self.readings,
             "notes": self.notes,
-            "files": {"table": COMPARISON_TABLE, "pointwise": POINTWISE_TABLE},
         }
 
 
@@ -249,55 +241,4 @@ def _reading(best: str, other: str, gap: float, se: float) -> str:
     )
 
 
-def write_comparison(folder: str | Path, comparison: Comparison) -> list[Path]:
-    """Write comparison.csv, comparison_pointwise.csv and comparison.json atomically."""
-    folder = Path(folder)
-    if folder.exists() and not folder.is_dir():
-        raise DataError(f"--out {str(folder)!r} is a file; give a folder for the comparison.")
-    paths = [folder / COMPARISON_TABLE, folder / POINTWISE_TABLE, folder / COMPARISON_FILE]
-    _io.write_csv(paths[0], comparison.table)
-    _io.write_csv(paths[1], comparison.pointwise)
-    _io.write_json(paths[2], comparison.to_dict())
-    return paths
-
-
-def format_comparison(comparison: Comparison) -> str:
-    """Ten-second terminal summary: the table, best first, and the plain-words readings."""
-    t = comparison.table
-    width = max(12, min(28, max(len(str(r)) for r in t["run"])))
-    lines = [
-        f"comparison: {len(t)} runs, {comparison.info['groups']} groups, leave one group out"
-        " (PSIS-LOO on y_group; larger elpd is better)",
-        f"  {'#':<3}{'run':<{width}}  {'elpd_loo':>9} {'se':>6}  {'difference':>10} {'se':>6}"
-        f" {'z':>6}  high k",
-    ]
-    for r in t.itertuples():
-        if r.rank == 1:
-            diff = f"{'0.0':>10} {'-':>6} {'-':>6}"
-        else:
-            diff = f"{r.elpd_difference:>10.1f} {r.difference_se:>6.1f} {r.difference_z:>6.1f}"
-        flag = "" if r.final else "  (not final)"
-        high = f"{r.high_k_groups}"
-        if r.high_k_groups:
-            high += f" ({r.unresolved_groups} not refitted)" if r.unresolved_groups else " (exact)"
-        lines.append(
-            f"  {r.rank:<3}{str(r.run)[:width]:<{width}}  {r.elpd_loo:>9.1f} {r.se:>6.1f}  {diff}"
-            f"  {high}{flag}"
-        )
-    lines += [f"  {s}" for s in comparison.readings]
-    lines += [f"  note: {n}" for n in comparison.notes]
-    return "\n".join(lines)
-
-
-__all__ = [
-    "COLUMNS",
-    "COMPARISON_FILE",
-    "COMPARISON_TABLE",
-    "Comparison",
-    "POINTWISE_TABLE",
-    "check_same_data",
-    "compare_posteriors",
-    "format_comparison",
-    "preference",
-    "write_comparison",
-]
+__all__ = ["COLUMNS", "Comparison", "check_same_data", "compare_posteriors", "preference"]

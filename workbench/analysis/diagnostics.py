@@ -270,22 +270,3 @@ def first_remedy_settings(diagnostics: Diagnostics, settings: dict) -> tuple[dic
         new["engine"] = "exact"
         return new, "retried with --engine exact"
     return None
-
-
-def format_diagnostics(d: Diagnostics) -> str:
-    """Ten-second terminal summary."""
-    s = d.to_dict()["summary"]
-    lines = [
-        f"convergence: {d.verdict.upper()}  (max R-hat {s['max_r_hat'] or float('nan'):.4f},"
-        f" min bulk ESS {s['min_ess_bulk'] or float('nan'):.0f},"
-        f" min tail ESS {s['min_ess_tail'] or float('nan'):.0f}"
-        + (f", divergences {d.run['divergences']}" if "divergences" in d.run else "")
-        + ")"
-    ]
-    for r in d.reasons[:5]:
-        lines.append(f"  - {r['text']}")
-    if d.remedies:
-        lines.append(f"  remedy: {d.remedies[0]}")
-    if d.run.get("independent_draws"):
-        lines.append("  (independent draws from the exact engine: mixing holds by construction)")
-    return "\n".join(lines)

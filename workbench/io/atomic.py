@@ -12,8 +12,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..models import DataError
-
 
 def _default(o):
     if isinstance(o, np.integer):
@@ -80,27 +78,14 @@ def write_csv(path: Path, table: pd.DataFrame) -> None:
     write_atomic(path, lambda p: table.to_csv(p, index=False, float_format="%.10g"))
 
 
-def check_replaceable(out: Path, *, marker: str = "run.json", kind: str = "run") -> None:
-    """DataError unless ``out`` is absent, empty, or a ``kind`` folder (holds ``marker``)."""
-    out = Path(out)
-    if out.exists():
-        if not out.is_dir():
-            raise DataError(f"--out {str(out)!r} is a file; give a folder for the {kind}.")
-        if any(out.iterdir()) and not (out / marker).exists():
-            raise DataError(
-                f"--out {str(out)!r} exists and is not a {kind} folder; choose a new folder."
-            )
+def swap_in(out: Path, fill: Callable[[Path], None]) -> None:
+    """Fill a fresh sibling staging folder, then swap it in for ``out`` in two renames.
 
-
-def replace_folder(
-    out: Path, fill: Callable[[Path], None], *, marker: str = "run.json", kind: str = "run"
-) -> None:
-    """Fill a fresh sibling folder, then swap it in for ``out`` in two renames.
-
-    An existing folder is replaced only if it is a ``kind`` folder (holds ``marker``) or empty.
+    Whoever calls this has checked that ``out`` may be replaced (see
+    :func:`workbench.io.runfolder.check_replaceable`). A reader sees the old folder or the
+    new one; if anything fails, the staging folder is removed and ``out`` is untouched.
     """
     out = Path(out)
-    check_replaceable(out, marker=marker, kind=kind)
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
     os.chmod(staging, 0o777 & ~_umask())
@@ -110,7 +95,11 @@ def replace_folder(
             old = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".old", dir=out.parent))
             old.rmdir()
             os.replace(out, old)
-            os.replace(staging, out)
+            try:
+                os.replace(staging, out)
+            except OSError:
+                os.replace(old, out)  # put the old folder back
+                raise
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.replace(staging, out)

@@ -341,16 +341,6 @@ def test_group_integrated_likelihood_is_the_one_psis_can_use(spread):
     assert not ppc.leave_one_group_out(posts["beta-binomial"]).high_k
 
 
-def test_good_k_matches_arviz():
-    # az.loo reports the same threshold, min(1 - 1/log10(S), 0.7)
-    ll = np.random.default_rng(0).normal(size=(1, 100, 3))
-    idata = az.from_dict(log_likelihood={"y": ll})
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        assert ppc.good_k_threshold(100) == pytest.approx(az.loo(idata, reff=1.0).good_k)
-    assert ppc.good_k_threshold(4000) == 0.7
-
-
 def test_loo_pit_calibrated_for_beta_binomial_not_complete_pooling(spread_checks):
     # randomised PIT for counts (Czado, Gneiting & Held 2009); uniformity by scipy.stats.kstest
     assert spread_checks["beta-binomial"].calibration["verdict"] == "calibrated"

@@ -1,0 +1,182 @@
+"""Trials still needed: how many more trials make a group's comparison with a target settled."""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pandas as pd
+from scipy import special
+
+from ..models._stats import beta_from_moments, betabinom_logpmf
+
+#: P(above target) outside these bounds reads "settled"
+SETTLE_BOUNDS = (0.05, 0.95)
+CHUNK_CELLS = 2_000_000
+
+if TYPE_CHECKING:
+    from .draws import GroupDraws
+
+
+def _smallest_true(pred, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Per element, the smallest integer in [lo, hi] where the monotone ``pred`` holds (hi if none).
+
+    ``pred(x)`` must be False then True along the integers; ``hi`` is treated as True.
+    """
+    lo = lo.copy()
+    hi = hi.copy()
+    while True:
+        open_ = lo < hi
+        if not open_.any():
+            return lo
+        mid = (lo + hi) // 2
+        t = pred(mid)
+        hi = np.where(open_ & t, mid, hi)
+        lo = np.where(open_ & ~t, mid + 1, lo)
+
+
+def settle_chance(
+    a: np.ndarray,
+    b: np.ndarray,
+    m: np.ndarray,
+    target: float,
+    bounds: tuple[float, float] = SETTLE_BOUNDS,
+    window_cells: int = CHUNK_CELLS,
+) -> np.ndarray:
+    """P(after m more trials, P(theta > target | data) falls outside ``bounds``).
+
+    The group's current posterior is Beta(a, b); the m future successes are then
+    Beta-binomial(m, a, b), and the updated P(theta > target) rises with their count, so the
+    settled outcomes are y <= y_low and y >= y_high, found by bisection on y with the
+    regularised incomplete beta function. The chance is one minus the Beta-binomial mass of
+    the unsettled window between, summed exactly from the probability mass function.
+    """
+    a = np.asarray(a, dtype=float)
+    b = np.asarray(b, dtype=float)
+    m = np.broadcast_to(np.asarray(m, dtype=np.int64), a.shape).copy()
+    low, high = bounds
+
+    def cdf_at_target(y):  # P(theta <= target | y successes in m), decreasing in y
+        return special.betainc(a + y, b + m - y, target)
+
+    zero = np.zeros_like(m)
+    top = m + 1
+    # smallest y with P(above) > high  <=>  cdf < 1 - high
+    y_high = _smallest_true(lambda y: cdf_at_target(y) < 1 - high, zero, top)
+    # smallest y with P(above) >= low  <=>  cdf <= 1 - low; y_low is the one before
+    y_low = _smallest_true(lambda y: cdf_at_target(y) <= 1 - low, zero, top) - 1
+    first = y_low + 1
+    length = np.maximum(y_high - first, 0)
+    unsettled = np.zeros(len(a))
+    live = np.flatnonzero(length > 0)
+    if live.size:
+        longest = int(length[live].max())
+        step = max(1, window_cells // max(longest, 1))
+        for s in range(0, live.size, step):
+            idx = live[s : s + step]
+            unsettled[idx] = _window_mass(a[idx], b[idx], m[idx], first[idx], length[idx])
+    return np.clip(1.0 - unsettled, 0.0, 1.0)
+
+
+def _window_mass(a, b, m, first, length) -> np.ndarray:
+    """Beta-binomial(m, a, b) mass of y = first .. first + length - 1, summed per row."""
+    span = int(length.max())
+    j = np.arange(span)[None, :]
+    y = first[:, None] + j
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logpmf = betabinom_logpmf(y, m[:, None].astype(float), a[:, None], b[:, None])
+    logpmf = np.where(j < length[:, None], logpmf, -np.inf)
+    return np.exp(logpmf).sum(axis=1)
+
+
+def trials_needed_table(
+    inp: GroupDraws,
+    target: float,
+    *,
+    chance: float = 0.80,
+    max_trials: int = 100_000,
+) -> tuple[pd.DataFrame, dict]:
+    """How many more trials make it likely (``chance``) that a group's comparison is settled.
+
+    Preposterior analysis: each group's posterior is moment-matched to a Beta (exact for the
+    conjugate models; for the hierarchy this holds the population fixed while the group
+    learns), future successes are Beta-binomial, and :func:`settle_chance` gives the exact
+    probability that P(theta > target) ends outside (0.05, 0.95). The search doubles m from 1
+    to ``max_trials``, then bisects between the last miss and the first hit. The chance rises
+    with m apart from small saw-teeth caused by whole-number counts, so the answer is the
+    first m on the search path that reaches ``chance``.
+    """
+    names = inp.names.astype(str)
+    a, b = beta_from_moments(*inp.moments())
+    p_above = inp.prob_above(target)
+    low, high = SETTLE_BOUNDS
+    settled = (p_above > high) | (p_above < low)
+    g = len(names)
+    needed = np.full(g, -1, dtype=np.int64)
+    prob = np.full(g, np.nan)
+    needed[settled] = 0
+    prob[settled] = 1.0
+    todo = np.flatnonzero(~settled)
+    last_miss = np.zeros(g, dtype=np.int64)
+    grid = [int(x) for x in 2 ** np.arange(0, int(np.log2(max_trials)) + 1)]
+    if grid[-1] != max_trials:
+        grid.append(int(max_trials))
+    first_hit = np.full(g, -1, dtype=np.int64)
+    hit_prob = np.full(g, np.nan)
+    active = todo
+    for m in grid:
+        if not active.size:
+            break
+        c = settle_chance(a[active], b[active], np.full(active.size, m), target)
+        hit = c >= chance
+        first_hit[active[hit]] = m
+        hit_prob[active[hit]] = c[hit]
+        last_miss[active[~hit]] = m
+        prob[active[~hit]] = c[~hit]
+        active = active[~hit]
+    found = todo[first_hit[todo] > 0]
+    lo = last_miss[found].copy()  # chance < target level here (0: not yet settled)
+    hi = first_hit[found].copy()
+    best = hit_prob[found].copy()
+    while found.size:
+        open_ = hi - lo > 1
+        if not open_.any():
+            break
+        idx = np.flatnonzero(open_)
+        mid = (lo[idx] + hi[idx]) // 2
+        c = settle_chance(a[found[idx]], b[found[idx]], mid, target)
+        ok = c >= chance
+        hi[idx[ok]] = mid[ok]
+        best[idx[ok]] = c[ok]
+        lo[idx[~ok]] = mid[~ok]
+    needed[found] = hi
+    prob[found] = best
+    status = np.where(
+        settled,
+        "already settled",
+        np.where(needed > 0, "settles with more trials", f"not within {max_trials} trials"),
+    )
+    table = pd.DataFrame(
+        {
+            "group": names,
+            "trials_needed": pd.array(np.where(needed >= 0, needed, 0), dtype="Int64"),
+            "status": status,
+            "prob_settled": prob,
+        }
+    )
+    table.loc[needed < 0, "trials_needed"] = pd.NA
+    doc = {
+        "target": target,
+        "settle_chance": chance,
+        "max_trials": int(max_trials),
+        "settled_when": f"P(above target) > {high} or < {low}",
+        "already_settled": int(settled.sum()),
+        "settles_with_more_trials": int(found.size),
+        "not_within_max_trials": int(g - settled.sum() - found.size),
+        "method": (
+            "preposterior: each group's posterior moment-matched to a Beta; future successes"
+            " Beta-binomial; settled outcomes found by bisection; m searched by doubling, then"
+            " bisection"
+        ),
+    }
+    return table, doc
