@@ -1,7 +1,7 @@
 # ruff: noqa: E501
 """The report's page: one jinja2 template, its style sheet and its one small script.
 
-Kept apart from :mod:`workbench.report` so the logic there stays short. Every value reaches
+Kept apart from :mod:`workbench.report.render` so the logic there stays short. Every value reaches
 the page through jinja2 with autoescaping on; nothing user-supplied is ever marked safe.
 The script only sorts and filters the estimates table with ``textContent`` (never
 ``innerHTML``) and carries no data; the page's Content-Security-Policy admits it by its
@@ -158,7 +158,7 @@ TEMPLATE = """<!DOCTYPE html>
 <figure id="figure-{{ name }}">
 <img src="{{ images[name].uri }}" width="{{ images[name].width }}" height="{{ images[name].height }}"
  alt="{{ images[name].alt }}">
-<figcaption>{{ caption }} <span class="mono">(figures/{{ name }}.png)</span></figcaption>
+<figcaption>{{ caption }} <span class="mono">({{ figures_dir }}/{{ images[name].file_name }})</span></figcaption>
 </figure>
 {% endif %}
 {%- endmacro %}
@@ -207,7 +207,7 @@ TEMPLATE = """<!DOCTYPE html>
 {{ kv(model_rows) }}
 <h3>Population</h3>
 {% if population %}{{ data_table(population) }}{% else %}{{ absent("Population parameters", "not in this model") }}{% endif %}
-{{ figure("population", "Posterior draws of the population parameters; the orange band is the interval from population.csv.") }}
+{{ figure("population", "Posterior draws of the population parameters; the orange band is the interval from " ~ population_file ~ ".") }}
 <h3>Chain mixing</h3>
 {% if "mixing" in images %}
 {{ figure("mixing", "Traces of the population parameters by chain, and each chain's rank histogram; well-mixed chains overlap and give flat, alike histograms.") }}
@@ -301,20 +301,23 @@ TEMPLATE = """<!DOCTYPE html>
 
 <section id="reproduce">
 <h2><span class="no">9</span>How to reproduce this run</h2>
-{% if recorded_command %}<p>The command that made it:</p><pre class="cmd">{{ recorded_command }}</pre>{% endif %}
-{% if command %}<p>The same fit, every setting spelled out (the seed is the one used):</p><pre class="cmd">{{ command }}</pre>{% endif %}
-<p>Then <code>workbench report {{ folder_name }}</code> writes this page again from the run folder.</p>
+<p>The commands that made it, in order:</p>
+<ol id="commands">{% for step in reproduce.commands %}<li><span class="muted small">{{ step.what }}{% if step.at %}, {{ step.at }}{% endif %}:</span>
+{% if step.command %}<pre class="cmd">{{ step.command }}</pre>{% else %}<p class="absent">run from Python: no command line recorded.</p>{% endif %}</li>
+{% endfor %}</ol>
+{% if reproduce.command %}<p>The same fit, with every setting that differs from its default (the seed is the one used):</p><pre class="cmd" id="fit-command">{{ reproduce.command }}</pre>{% endif %}
+<p>Then <code>{{ reproduce.report_step }}</code> writes this page again from the run folder.</p>
 <h3>Settings</h3>
-{{ kv(settings_rows) }}
+{{ kv(reproduce.settings_rows) }}
 <h3>Versions and input</h3>
-{{ kv(version_rows) }}
+{{ kv(reproduce.version_rows) }}
 <h3>Files in the run folder</h3>
-<p class="mono small">{% for f in files %}{{ f }}{% if not loop.last %}, {% endif %}{% endfor %}</p>
+<p class="mono small">{% for f in reproduce.files %}{{ f }}{% if not loop.last %}, {% endif %}{% endfor %}</p>
 </section>
 </main>
 <footer>Written by workbench {{ version }} on {{ created }} from the run folder
 <span class="mono">{{ folder_name }}</span>. One self-contained file: it loads nothing from
-the network. Figures are also saved as PNG files in <span class="mono">figures/</span>.</footer>
+the network. Figures are also saved as PNG files in <span class="mono">{{ figures_dir }}/</span>.</footer>
 <script>{{ script }}</script>
 </body>
 </html>
