@@ -319,6 +319,12 @@ COLUMN_OPTIONS = _options(
         "column naming each group's parent (a region for stores; one per group) for --model"
         " nested", "columns", "COL", "none",
     ),
+    Option(
+        "query", None, Optional(Text()),
+        "read the counts with this SQL (DuckDB), over a DuckDB database file given as the data"
+        " or over the data file as the view 'data'; its result has the group and count (or"
+        " outcome) columns", "columns", "SQL", "none",
+    ),
 )
 
 #: the model, its priors and how its posterior is computed

@@ -23,6 +23,7 @@ from .analysis.predictions import default_seed, predict
 from .analysis.ranking import compute as compute_ranking
 from .analysis.ranking import merge_estimate_columns, rank_options
 from .analysis.settings import CheckSettings
+from .io import events
 from .io.inputs import LoadedData, load_groups
 from .models import MODELS, ConvergenceWarning, ParameterError, attr, make_model
 from .options import FIT_OPTIONS, FitSettings, label
@@ -46,6 +47,11 @@ def load(source, settings: FitSettings) -> LoadedData:
     """The input table, read and reconciled with the settings' columns."""
     if isinstance(source, LoadedData):
         return source
+    if events.wanted(source, outcome=settings["outcome"], query=settings["query"],
+                     covariates=settings["covariates"], parent=settings["parent"]):
+        return events.load_events(source, group=settings["group"],
+                                  successes=settings["successes"], trials=settings["trials"],
+                                  outcome=settings["outcome"], query=settings["query"])
     return load_groups(
         source,
         group=settings["group"],
