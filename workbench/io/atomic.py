@@ -1,16 +1,32 @@
-"""Atomic writes: a file appears whole under its name or not at all."""
+"""Atomic writes: a file appears whole under its name or not at all.
+
+Every CSV the tool writes goes through :func:`write_csv`, the one place where text cells
+are made safe for spreadsheets (:func:`neutralise`); :func:`restore` undoes it on reading.
+"""
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
 import os
 import shutil
+import signal
 import tempfile
-from collections.abc import Callable
+import threading
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
+from ..models.exceptions import DataError
+
+#: A text cell starting with one of these is read by spreadsheets as a formula (OWASP's CSV
+#: injection guidance lists =, +, -, @, tab and carriage return).
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+#: The character put in front of such a cell so that spreadsheets show it as text.
+FORMULA_GUARD = "'"
 
 
 def _default(o):
@@ -74,8 +90,80 @@ def write_json(path: Path, doc: dict) -> None:
     write_text(path, json_text(doc))
 
 
+def _needs_guard(text: str) -> bool:
+    # zero or more guards, then a formula start: guarded (so the rule can be undone exactly)
+    return text.lstrip(FORMULA_GUARD)[:1] in FORMULA_STARTS and text[:1] != ""
+
+
+def neutralise(value: object) -> object:
+    """A text cell as written to CSV: one ``'`` in front when a spreadsheet would run it.
+
+    The rule: a text that starts with ``=``, ``+``, ``-``, ``@``, a tab or a carriage
+    return, possibly after one or more ``'``, gets one more ``'`` in front. Numbers are
+    never changed. :func:`restore` removes exactly that one ``'``, so names round-trip.
+    """
+    if isinstance(value, str) and _needs_guard(value):
+        return FORMULA_GUARD + value
+    return value
+
+
+def restore(value: object) -> object:
+    """The text :func:`neutralise` was given."""
+    if isinstance(value, str) and value[:1] == FORMULA_GUARD and _needs_guard(value[1:]):
+        return value[1:]
+    return value
+
+
+def safe_for_spreadsheets(table: pd.DataFrame) -> pd.DataFrame:
+    """The table with every text cell neutralised (a copy only when something changes)."""
+    columns = {}
+    for name in table.columns:
+        col = table[name]
+        if col.dtype.kind == "O" or str(col.dtype) in ("string", "str"):
+            values = col.to_numpy(dtype=object)
+            if any(isinstance(v, str) and _needs_guard(v) for v in values):
+                columns[name] = pd.Series([neutralise(v) for v in values], index=col.index,
+                                          dtype=object)
+    if not columns:
+        return table
+    out = table.copy()
+    for name, col in columns.items():
+        out[name] = col
+    return out
+
+
 def write_csv(path: Path, table: pd.DataFrame) -> None:
-    write_atomic(path, lambda p: table.to_csv(p, index=False, float_format="%.10g"))
+    """A CSV, atomically, with spreadsheet formulas neutralised (see :func:`neutralise`)."""
+    safe = safe_for_spreadsheets(table)
+    names = [neutralise(str(c)) for c in safe.columns]
+    if names != [str(c) for c in safe.columns]:
+        safe = safe.set_axis(names, axis=1)
+    write_atomic(path, lambda p: safe.to_csv(p, index=False, float_format="%.10g"))
+
+
+@contextlib.contextmanager
+def signals_held() -> Iterator[None]:
+    """SIGINT and SIGTERM wait until the block ends (so a folder swap is never half done)."""
+    if threading.current_thread() is not threading.main_thread() or not hasattr(
+            signal, "pthread_sigmask"):
+        yield
+        return
+    held = {signal.SIGINT, signal.SIGTERM}
+    before = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, before)
+
+
+def staging_name(out: Path, suffix: str) -> Path:
+    """A fresh sibling folder ``.NAME.PID.XXXX.part`` (the PID lets a later run see it died)."""
+    return Path(tempfile.mkdtemp(prefix=f".{out.name}.{os.getpid()}.", suffix=suffix,
+                                 dir=out.parent))
+
+
+#: how many times a swap is retried when another writer finished at the same moment
+SWAP_ATTEMPTS = 5
 
 
 def swap_in(out: Path, fill: Callable[[Path], None]) -> None:
@@ -84,25 +172,50 @@ def swap_in(out: Path, fill: Callable[[Path], None]) -> None:
     Whoever calls this has checked that ``out`` may be replaced (see
     :func:`workbench.io.runfolder.check_replaceable`). A reader sees the old folder or the
     new one; if anything fails, the staging folder is removed and ``out`` is untouched.
+    The renames run with SIGINT/SIGTERM held, so an interrupt lands before or after them.
+    When two writers finish together, the last one's folder stays (as if they had run one
+    after the other) and neither fails.
     """
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
+    staging = staging_name(out, ".part")
     os.chmod(staging, 0o777 & ~_umask())
     try:
         fill(staging)
-        if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".old", dir=out.parent))
-            old.rmdir()
-            os.replace(out, old)
-            try:
-                os.replace(staging, out)
-            except OSError:
-                os.replace(old, out)  # put the old folder back
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(staging, out)
+        with signals_held():
+            _swap(out, staging)
     finally:
         if staging.exists():
             shutil.rmtree(staging, ignore_errors=True)
+
+
+def _swap(out: Path, staging: Path) -> None:
+    olds = []
+    try:
+        for _ in range(SWAP_ATTEMPTS):
+            if out.exists() or out.is_symlink():
+                old = staging_name(out, ".old")
+                old.rmdir()
+                try:
+                    os.replace(out, old)
+                    olds.append(old)
+                except FileNotFoundError:  # another writer moved it first
+                    pass
+            try:
+                os.replace(staging, out)
+                return
+            except OSError as exc:
+                if exc.errno not in (errno.ENOTEMPTY, errno.EEXIST):
+                    if olds and not out.exists():
+                        os.replace(olds.pop(), out)  # put the old folder back
+                    raise DataError(
+                        f"cannot put the new folder in place of {str(out)!r}"
+                        f" ({exc.strerror}); the old one is unchanged."
+                    ) from exc
+                # another writer put its folder there between our two renames: again
+        raise DataError(
+            f"{str(out)!r} kept being replaced by other runs at the same moment; run again."
+        )
+    finally:
+        for old in olds:
+            shutil.rmtree(old, ignore_errors=True)

@@ -16,6 +16,7 @@ list (a project folder that happens to hold a file named run.json is never touch
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import shutil
@@ -56,6 +57,14 @@ FILES: dict[str, str] = {
     "ppc_statistics": "ppc_statistics.csv",
     "group_checks": "group_checks.csv",
     "predictions": "predictions.csv",
+    "sensitivity": "sensitivity.csv",
+    "sensitivity_summary": "sensitivity.json",
+    "calibration": "calibration.csv",
+    "calibration_replicates": "calibration_replicates.csv",
+    "calibration_summary": "calibration.json",
+    # finished calibration replicates of an unfinished run, one JSON line each; a dot-file, so
+    # no folder update carries it over: it lives only until the calibration lands
+    "calibration_staging": ".calibration-replicates.jsonl",
     "report": "report.html",
     "figures": "figures",
 }
@@ -91,6 +100,11 @@ TEXT_COLUMNS = (
     "quantity",
     "statistic",
     "verdict",
+    "alternative",
+    "baseline_flag",
+    "alternative_flag",
+    "baseline_rank_interval",
+    "alternative_rank_interval",
 )
 
 
@@ -100,24 +114,107 @@ def path_of(folder: str | Path, name: str) -> Path:
 
 
 def read_table(path: str | Path) -> pd.DataFrame:
-    """A run-folder CSV: names kept as text, blanks as missing, nothing else changed."""
+    """A run-folder CSV: names kept as text, blanks as missing, nothing else changed.
+
+    Undoes the spreadsheet guard of :func:`workbench.io.atomic.write_csv` (one ``'`` before a
+    text that would start a formula), so names read back exactly as they were written.
+    """
     path = Path(path)
     header = pd.read_csv(path, nrows=0).columns
-    dtype = {c: str for c in header if c in TEXT_COLUMNS}
-    return pd.read_csv(path, dtype=dtype, keep_default_na=False, na_values=[""])
+    dtype = {c: str for c in header if atomic.restore(c) in TEXT_COLUMNS}
+    table = pd.read_csv(path, dtype=dtype, keep_default_na=False, na_values=[""])
+    table.columns = [atomic.restore(c) for c in table.columns]
+    for c in table.columns:
+        if table[c].dtype.kind == "O":
+            values = table[c].to_numpy(dtype=object)
+            if any(isinstance(v, str) and v[:1] == atomic.FORMULA_GUARD for v in values):
+                table[c] = [atomic.restore(v) for v in values]
+    return table
 
 
-def _read_json(path: Path) -> dict:
+def _rebuild(record: dict | None) -> str:
+    """How to make the folder again: the command that made it, when run.json says it."""
+    command = (record or {}).get("command")
+    if isinstance(command, str) and command.strip():
+        return f"rebuild it with: {command}"
+    return "rebuild it with 'workbench fit' on the same data and settings"
+
+
+def _damaged(path: Path, what: str, record: dict | None = None) -> DataError:
+    return DataError(f"run folder {str(path.parent)!r} is damaged: {path.name} {what};"
+                     f" {_rebuild(record)}.")
+
+
+def _read_json(path: Path, record: dict | None = None) -> dict:
     try:
         doc = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise DataError(
-            f"{str(path)!r} is damaged ({type(exc).__name__}: {str(exc)[:80]}); rebuild the"
-            " run folder with 'workbench fit'."
-        ) from exc
+        raise _damaged(path, f"cannot be read ({type(exc).__name__}: {str(exc)[:80]})",
+                       record) from exc
     if not isinstance(doc, dict):
-        raise DataError(f"{str(path)!r} is damaged (not a JSON object); rebuild the run folder.")
+        raise _damaged(path, "is not a JSON object", record)
     return doc
+
+
+#: file digests already computed, by (path, inode, size, mtime): hard links share them
+_DIGESTS: dict[tuple, str] = {}
+
+
+def _digest(path: Path) -> str:
+    st = path.stat()
+    key = (str(path.resolve()), st.st_ino, st.st_size, st.st_mtime_ns)
+    if key not in _DIGESTS:
+        h = hashlib.sha256()
+        with open(path, "rb") as f:
+            while block := f.read(1 << 22):
+                h.update(block)
+        _DIGESTS[key] = h.hexdigest()
+    return _DIGESTS[key]
+
+
+def _digests(folder: Path) -> dict[str, str]:
+    """sha256 of every file the folder holds but run.json, by path inside the folder."""
+    out = {}
+    for item in sorted(folder.iterdir()):
+        if item.name == FILES["record"] or item.name.startswith("."):
+            continue
+        if item.is_dir():
+            for sub in sorted(item.iterdir()):
+                if sub.is_file() and not sub.name.startswith("."):
+                    out[f"{item.name}/{sub.name}"] = _digest(sub)
+        elif item.is_file():
+            out[item.name] = _digest(item)
+    return out
+
+
+def marker_problem(record: dict) -> str | None:
+    """Why a run.json is not the marker of a folder this code wrote, or None."""
+    if record.get("tool") != TOOL:
+        return "it does not name workbench as the tool that wrote it"
+    schema = record.get("workbench_run")
+    if not isinstance(schema, int) or isinstance(schema, bool) or schema != SCHEMA_VERSION:
+        return f"its schema {schema!r} is not {SCHEMA_VERSION}, the one this version writes"
+    return None
+
+
+def verify_digests(folder: Path, record: dict) -> None:
+    """DataError naming the first file that differs from what was written (or is missing)."""
+    said = record.get("digests")
+    if not isinstance(said, dict):
+        return  # written before digests were kept: the other checks still apply
+    actual = _digests(folder)
+    for name, digest in said.items():
+        if name not in actual:
+            raise _damaged(folder / name, "is missing", record)
+        if actual[name] != digest:
+            raise _damaged(folder / name, "was changed or damaged after it was written (its"
+                           " sha256 differs from run.json's)", record)
+    extra = sorted(set(actual) - set(said))
+    if extra:
+        raise DataError(
+            f"run folder {str(folder)!r} holds {extra[0]!r}, which workbench did not write;"
+            " move it out of the folder (nothing of it is read)."
+        )
 
 
 # -- what a folder holds -------------------------------------------------------------------------
@@ -158,7 +255,7 @@ class FolderContents:
 
 
 def is_run_folder(path: str | Path) -> bool:
-    """True when ``path`` holds a run.json this tool wrote (any schema)."""
+    """True when ``path`` holds a run.json this code wrote (tool and schema checked)."""
     record = Path(path) / FILES["record"]
     if not record.is_file():
         return False
@@ -166,11 +263,15 @@ def is_run_folder(path: str | Path) -> bool:
         doc = json.loads(record.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError):
         return False
-    return isinstance(doc, dict) and "workbench_run" in doc
+    return isinstance(doc, dict) and marker_problem(doc) is None
 
 
 def read_folder(path: str | Path, *, tables: tuple[str, ...] | None = None) -> FolderContents:
     """Read a run folder's record, documents and tables (all, or the named ones).
+
+    Checks first that run.json is this tool's (tool, schema), that every file is the one
+    written (sha256 digests in run.json), that every JSON and CSV parses, and that
+    estimates.csv has one row per group run.json records.
 
     Raises
     ------
@@ -179,38 +280,49 @@ def read_folder(path: str | Path, *, tables: tuple[str, ...] | None = None) -> F
     """
     path = Path(path)
     record_path = path_of(path, "record")
-    if not path.is_dir() or not record_path.exists() or not path_of(path, "estimates").exists():
+    if not path.is_dir() or not record_path.exists():
         raise DataError(
-            f"{str(path)!r} is not a run folder (no {FILES['record']} or {FILES['estimates']});"
+            f"{str(path)!r} is not a run folder (no {FILES['record']});"
             " give a folder written by 'workbench fit' or 'workbench demo'."
         )
     record = _read_json(record_path)
-    if "workbench_run" not in record:
+    problem = marker_problem(record)
+    if problem is not None:
         raise DataError(
-            f"{str(record_path)!r} was not written by workbench (no 'workbench_run' key); give a"
-            " folder written by 'workbench fit'."
+            f"{str(record_path)!r} is not the record of a workbench run folder: {problem};"
+            f" {_rebuild(record)}."
         )
+    verify_digests(path, record)
+    if not path_of(path, "estimates").exists():
+        raise _damaged(path_of(path, "estimates"), "is missing", record)
     contents = FolderContents(path, record)
     for name in DOCUMENTS:
         p = path_of(path, name)
         if p.exists():
-            contents.documents[name] = _read_json(p)
+            contents.documents[name] = _read_json(p, record)
     for name in tables or TABLES:
         p = path_of(path, name)
         if p.exists():
             try:
                 contents.tables[name] = read_table(p)
-            except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-                raise DataError(
-                    f"{str(p)!r} is damaged ({type(exc).__name__}); rebuild the run folder with"
-                    " 'workbench fit'."
-                ) from exc
+            except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
+                    ValueError) as exc:
+                raise _damaged(p, f"cannot be read ({type(exc).__name__})", record) from exc
     groups = (record.get("input") or {}).get("groups")
-    if groups is not None and len(contents.tables.get("estimates", ())) != groups:
-        raise DataError(
-            f"{str(path_of(path, 'estimates'))!r} has {len(contents.estimates)} rows but run.json"
-            f" records {groups} groups; the folder is damaged: rebuild it with 'workbench fit'."
-        )
+    estimates = contents.tables.get("estimates")
+    if estimates is None and tables is not None:  # the row count is checked whatever is read
+        try:
+            estimates = read_table(path_of(path, "estimates"))
+        except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
+                ValueError) as exc:
+            raise _damaged(path_of(path, "estimates"), f"cannot be read ({type(exc).__name__})",
+                           record) from exc
+    if groups is not None and len(estimates) != groups:
+        raise _damaged(path_of(path, "estimates"), f"has {len(estimates)} rows but run.json"
+                       f" records {groups} groups", record)
+    missing = [c for c in ("group", "successes", "trials") if c not in estimates.columns]
+    if missing:
+        raise _damaged(path_of(path, "estimates"), f"has no column {missing[0]!r}", record)
     return contents
 
 
@@ -227,10 +339,7 @@ def read_posterior(path: str | Path):
             idata = az.from_netcdf(str(nc), engine="h5netcdf")
             idata.load() if hasattr(idata, "load") else None
         except Exception as exc:  # h5py/xarray raise many kinds on a damaged file
-            raise DataError(
-                f"{str(nc)!r} is damaged ({type(exc).__name__}); rebuild the run folder with"
-                " 'workbench fit'."
-            ) from exc
+            raise _damaged(nc, f"cannot be read ({type(exc).__name__})") from exc
     return idata
 
 
@@ -241,47 +350,89 @@ def _listed(folder: Path) -> list[str]:
     return sorted(p.name for p in folder.iterdir() if not p.name.startswith("."))
 
 
-def check_replaceable(out: str | Path, *, kind: str = "run", marker: str | None = None) -> None:
+def _writable(folder: Path) -> bool:
+    return os.access(folder, os.W_OK | os.X_OK)
+
+
+def check_replaceable(out: str | Path, *, kind: str = "run", marker: str | None = None,
+                      label: str = "--out", allow_cwd: bool = False) -> None:
     """DataError unless ``out`` may be replaced: absent, empty, or a folder this tool wrote.
 
-    A run folder is recognised by its run.json (tool, schema) and may hold only the files it
-    lists; a comparison folder by ``marker`` (comparison.json) beside run folders.
+    A run folder is recognised by its run.json (tool and schema checked) and may hold only
+    the files it lists (hidden ones included, and only images in figures/); a comparison
+    folder by ``marker`` (comparison.json) beside run folders. Symbolic links, the working
+    folder, read-only folders and unwritable parents are refused: all of this is known
+    before any fitting, so callers check it first.
     """
     out = Path(out)
-    if out.is_symlink() and not out.exists():
-        raise DataError(f"--out {str(out)!r} is a dangling symbolic link; give a real folder.")
-    if not out.exists():
-        parent = out.resolve().parent
-        if parent.exists() and not os.access(parent, os.W_OK | os.X_OK):
-            raise DataError(f"--out {str(out)!r}: cannot write in {str(parent)!r}; choose another.")
-        return
     if out.is_symlink():
+        if not out.exists():
+            raise DataError(f"{label} {str(out)!r} is a dangling symbolic link; give a real folder.")
         raise DataError(
-            f"--out {str(out)!r} is a symbolic link; give the folder it points to, or a new one."
+            f"{label} {str(out)!r} is a symbolic link; give the folder it points to, or a new one."
         )
+    parent = Path(os.path.abspath(out)).parent
+    if not out.exists():
+        existing = parent
+        while not existing.exists():
+            existing = existing.parent
+        if not existing.is_dir() or not _writable(existing):
+            raise DataError(
+                f"{label} {str(out)!r}: cannot write in {str(existing)!r}; choose another folder."
+            )
+        return
     if not out.is_dir():
-        raise DataError(f"--out {str(out)!r} is a file; give a folder for the {kind}.")
-    if out.resolve() == Path.cwd().resolve() or out.resolve() == out.resolve().parent:
-        raise DataError(f"--out {str(out)!r} is the working folder; give a folder of its own.")
-    present = _listed(out)
+        raise DataError(f"{label} {str(out)!r} is a file; give a folder for the {kind}.")
+    here = Path.cwd().resolve()
+    if not allow_cwd and (out.resolve() == here or out.resolve() in here.parents):
+        raise DataError(
+            f"{label} {str(out)!r} is the working folder or holds it; give a folder of its own."
+        )
+    if not _writable(parent):
+        raise DataError(
+            f"{label} {str(out)!r}: cannot replace it, {str(parent)!r} is not writable; choose"
+            " another folder."
+        )
+    present = sorted(p.name for p in out.iterdir())
     if not present:
         return
+    if not _writable(out):
+        raise DataError(
+            f"{label} {str(out)!r} is read-only; make it writable or choose a new folder."
+        )
     if marker is not None:
         if (out / marker).exists():
             return
         raise DataError(
-            f"--out {str(out)!r} exists and is not a {kind} folder; choose a new folder."
+            f"{label} {str(out)!r} exists and is not a {kind} folder; choose a new folder."
         )
-    if not is_run_folder(out):
+    record_path = out / FILES["record"]
+    if not record_path.is_file():
         raise DataError(
-            f"--out {str(out)!r} exists and is not a run folder written by workbench; choose a"
-            " new folder."
+            f"{label} {str(out)!r} exists and is not a run folder written by workbench (no"
+            f" {FILES['record']}); choose a new folder."
         )
-    record = _read_json(out / FILES["record"])
-    foreign = [n for n in present if n not in set(record.get("files", [])) | {FILES["record"]}]
+    try:
+        record = json.loads(record_path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        record = None
+    problem = "it cannot be read" if not isinstance(record, dict) else marker_problem(record)
+    if problem is not None:
+        raise DataError(
+            f"{label} {str(out)!r} holds a {FILES['record']} that is not workbench's ({problem});"
+            " it is left untouched: choose a new folder."
+        )
+    listed = set(record.get("files") or []) | {FILES["record"]}
+    foreign = [n for n in present if n not in listed]
+    figures = out / FILES["figures"]
+    if figures.is_dir() and not figures.is_symlink():
+        foreign += [f"{FILES['figures']}/{p.name}" for p in sorted(figures.iterdir())
+                    if not (p.is_file() and p.suffix == ".png" and not p.name.startswith("."))]
+    links = [n for n in present if (out / n).is_symlink()]
+    foreign += [n for n in links if n not in foreign]
     if foreign:
         raise DataError(
-            f"--out {str(out)!r} holds files workbench did not write ({', '.join(foreign[:5])});"
+            f"{label} {str(out)!r} holds files workbench did not write ({', '.join(foreign[:5])});"
             " move them away or choose a new folder."
         )
 
@@ -291,6 +442,7 @@ def replace_folder(out: str | Path, fill: Callable[[Path], None], *, kind: str =
     """Fill a fresh sibling staging folder, then swap it in for ``out``; the old one goes."""
     out = Path(out)
     check_replaceable(out, kind=kind, marker=marker)
+    clean_staging(Path(os.path.abspath(out)).parent, out.name)
     atomic.swap_in(out, fill)
     return out
 
@@ -327,6 +479,7 @@ def write_posterior(path: Path, idata) -> None:
 def _finish_record(folder: Path, record: dict) -> dict:
     record = {**record, "workbench_run": SCHEMA_VERSION, "tool": TOOL}
     record["files"] = sorted({*_listed(folder), FILES["record"]})
+    record["digests"] = _digests(folder)
     atomic.write_json(path_of(folder, "record"), record)
     return record
 
@@ -372,6 +525,8 @@ def update_folder(
     """
     path = Path(path)
     old = read_folder(path, tables=())
+    check_replaceable(path, label="run folder", allow_cwd=True)
+    clean_staging(Path(os.path.abspath(path)).parent, path.name)
     new_record = {**old.record, **(record or {})}
     if step is not None:
         new_record["steps"] = [*old.record.get("steps", []), step]
@@ -433,22 +588,52 @@ def _link_or_copy(src, dst) -> None:
         shutil.copy2(src, dst)
 
 
-def clean_staging(parent: str | Path, name: str) -> list[Path]:
-    """Remove staging folders a killed run left beside ``parent/name`` (older than a minute)."""
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError):
+        return True
+    return True
+
+
+def clean_staging(parent: str | Path, name: str, *, age: float = 60.0) -> list[Path]:
+    """Remove staging folders a killed run left beside ``parent/name``.
+
+    A staging folder is ``.NAME.PID.XXXX.part`` (or ``.old``): it is removed when its
+    process is gone, or, without a readable PID, when it is older than ``age`` seconds.
+    A live writer's staging folder is never touched.
+    """
     parent = Path(parent)
     removed = []
     if not parent.is_dir():
         return removed
     now = time.time()
-    for p in parent.glob(f".{name}.*"):
-        if p.suffix in (".part", ".old") and p.is_dir():
-            try:
-                if now - p.stat().st_mtime > 60:
-                    shutil.rmtree(p, ignore_errors=True)
-                    removed.append(p)
-            except OSError:
-                continue
+    for p in parent.glob(f".{glob_escape(name)}.*"):
+        if p.suffix not in (".part", ".old") or not p.is_dir() or p.is_symlink():
+            continue
+        rest = p.name[len(name) + 2:].split(".")
+        try:
+            pid = int(rest[0]) if len(rest) >= 3 else None
+        except ValueError:
+            pid = None
+        try:
+            stale = (not _pid_alive(pid)) if pid is not None and pid != os.getpid() else (
+                pid is None and now - p.stat().st_mtime > age)
+            if stale:
+                shutil.rmtree(p, ignore_errors=True)
+                removed.append(p)
+        except OSError:
+            continue
     return removed
+
+
+def glob_escape(text: str) -> str:
+    """``text`` with glob's special characters taken literally."""
+    import glob
+
+    return glob.escape(text)
 
 
 def new_record(**parts) -> dict:
