@@ -25,6 +25,7 @@ from .analysis.ranking import merge_estimate_columns, rank_options
 from .analysis.settings import CheckSettings
 from .io import events
 from .io.inputs import LoadedData, load_groups
+from .io.runfolder import check_replaceable
 from .models import MODELS, ConvergenceWarning, ParameterError, attr, make_model
 from .options import FIT_OPTIONS, FitSettings, label
 from .results import Run
@@ -124,6 +125,24 @@ def default_draws(settings: FitSettings, groups: int) -> int:
     if engine == "exact" and chains * 1000 * groups > EXACT_STORED_CELLS:
         return max(100, EXACT_STORED_CELLS // (chains * groups))
     return 1000
+
+
+#: Largest posterior array of group rates (draws x chains x groups, float64) a fit may hold.
+MAX_THETA_GB = 4.0
+
+
+def check_size(settings: FitSettings, groups: int) -> None:
+    """Refuse, before any work, a fit whose draws of theta would not fit in memory."""
+    draws = default_draws(settings, groups)
+    chains = int(settings["chains"])
+    gb = draws * chains * groups * 8 / 1e9
+    if gb > MAX_THETA_GB:
+        fit_draws = max(1, int(MAX_THETA_GB * 1e9 / (8 * chains * groups)))
+        raise ParameterError(
+            f"{label('draws')} {draws} x {label('chains')} {chains} x {groups} groups would"
+            f" hold {gb:.1f} GB of draws, more than the {MAX_THETA_GB:g} GB allowed; give"
+            f" {label('draws')} {fit_draws} or fewer (or fewer chains)."
+        )
 
 
 def model_settings(settings: FitSettings, groups: int) -> dict:
@@ -278,8 +297,11 @@ def add_predictions(run: Run) -> None:
 
 def fit_run(source, settings: FitSettings) -> Run:
     """Load, fit, summarise, diagnose and compute every table: one run, not yet written."""
+    if settings["out"] is not None:  # --out problems are known now, not after the fit
+        check_replaceable(settings["out"])
     loaded = load(source, settings)
     check_model_inputs(loaded, settings)
+    check_size(settings, loaded.counts.n_groups)
     started = time.perf_counter()
     estimator = fit_model(loaded, settings)
     diagnostics = diagnose(estimator.idata_)

@@ -13,7 +13,9 @@ from __future__ import annotations
 import argparse
 import os
 import shlex
+import signal
 import sys
+import threading
 import warnings
 from pathlib import Path
 
@@ -21,7 +23,7 @@ from .. import api
 from ..analysis.settings import CheckSettings
 from ..io.runfolder import COMPARISON_FILES, FILES, path_of
 from ..models import ConvergenceWarning, ParameterError, WorkbenchError
-from ..options import FIT_OPTIONS, MODELS, invoked_as, spelling
+from ..options import FIT_OPTIONS, MODELS, aliases, invoked_as, spelling
 from . import text
 
 EXIT_OK, EXIT_INPUT, EXIT_NOT_READY = 0, 2, 3
@@ -163,8 +165,9 @@ def cmd_rank(args: argparse.Namespace) -> int:
 
 
 def cmd_predict(args: argparse.Namespace) -> int:
-    folder, pred = api.predict_folder(args.folder, trials=args.predict_trials, level=args.level,
-                                      seed=args.seed)
+    with aliases(predict_trials="--trials"):
+        folder, pred = api.predict_folder(args.folder, trials=args.predict_trials,
+                                          level=args.level, seed=args.seed)
     _emit(text.format_prediction(pred),
           f"wrote {path_of(args.folder, 'predictions')}"
           + ("" if pred.final else " (NOT FINAL: the run's diagnostics failed)"))
@@ -341,7 +344,30 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where the process is so that staging folders are removed on the way."""
+
+
+def _on_sigterm(signum, frame):
+    raise Terminated()
+
+
 def main(argv: list[str] | None = None) -> int:
+    main_thread = threading.current_thread() is threading.main_thread()
+    before = signal.signal(signal.SIGTERM, _on_sigterm) if main_thread else None
+    try:
+        with warnings.catch_warnings():
+            # a tab or other control character in a group name has no glyph in any font:
+            # matplotlib's notice about it is no news to the user
+            warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from",
+                                    category=UserWarning)
+            return _main(argv)
+    finally:
+        if main_thread:
+            signal.signal(signal.SIGTERM, before)
+
+
+def _main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     parser = build_parser()
     command = "workbench " + " ".join(shlex.quote(a) for a in argv)
@@ -361,9 +387,9 @@ def main(argv: list[str] | None = None) -> int:
             hint = f"; see 'workbench {argv[0] + ' ' if known else ''}--help'"
         print(f"error: {message}{hint}", file=sys.stderr)
         return EXIT_INPUT
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
         print("error: interrupted; no partial files were left.", file=sys.stderr)
-        return 130
+        return 143 if isinstance(exc, Terminated) else 130
     except BrokenPipeError:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
