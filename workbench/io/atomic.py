@@ -7,6 +7,7 @@ are made safe for spreadsheets (:func:`neutralise`); :func:`restore` undoes it o
 from __future__ import annotations
 
 import contextlib
+import csv
 import errno
 import json
 import os
@@ -138,7 +139,22 @@ def write_csv(path: Path, table: pd.DataFrame) -> None:
     names = [neutralise(str(c)) for c in safe.columns]
     if names != [str(c) for c in safe.columns]:
         safe = safe.set_axis(names, axis=1)
-    write_atomic(path, lambda p: safe.to_csv(p, index=False, float_format="%.10g"))
+    # a carriage return inside a cell is not quoted by the minimal rule (the line ends are
+    # "\n"), which would split the row for every reader: such files quote all text cells
+    quoting = csv.QUOTE_NONNUMERIC if _has_carriage_return(safe) else csv.QUOTE_MINIMAL
+    write_atomic(path, lambda p: safe.to_csv(p, index=False, float_format="%.10g",
+                                             quoting=quoting))
+
+
+def _has_carriage_return(table: pd.DataFrame) -> bool:
+    if any("\r" in str(c) for c in table.columns):
+        return True
+    for name in table.columns:
+        col = table[name]
+        if col.dtype.kind == "O" or str(col.dtype) in ("string", "str"):
+            if any(isinstance(v, str) and "\r" in v for v in col.to_numpy(dtype=object)):
+                return True
+    return False
 
 
 @contextlib.contextmanager
