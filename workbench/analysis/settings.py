@@ -12,16 +12,6 @@ CONSISTENT = "consistent"
 MISFIT = "misfit"
 NOT_COMPUTED = "not computed"
 
-#: Test statistics: name -> what it measures.
-STATISTICS: dict[str, str] = {
-    "sd_rate": "between-group sd of the observed rates (groups with trials > 0)",
-    "max_rate": "largest observed rate",
-    "min_rate": "smallest observed rate",
-    "zero_success_groups": "number of groups with trials > 0 and no successes",
-    "chi_square": "sum_j (y_j - n_j theta_j)^2 / (n_j theta_j (1 - theta_j)), same theta draw"
-    " for observed and replicated",
-}
-
 #: Columns of group_checks.csv, in order.
 GROUP_COLUMNS = [
     "group",

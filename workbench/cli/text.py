@@ -142,9 +142,9 @@ def format_ranking(
 
 
 _LABELS = {
-    "sd_rate": "sd of rates",
-    "max_rate": "max rate",
-    "min_rate": "min rate",
+    "dispersion": "dispersion",
+    "tail_share": "outer 5% share",
+    "central_share": "central 50% share",
     "zero_success_groups": "groups with 0",
     "chi_square": "chi-square",
 }
@@ -157,7 +157,10 @@ def format_checks(doc: dict) -> str:
     s = doc["settings"]
     lines = [
         f"checks: {doc['verdict'].upper()}  ({doc['model']}, {doc['replicated_draws']} replicated"
-        f" data sets; misfit when p < {s['lower']:g} or p > {s['upper']:g})"
+        + (f" data sets; misfit when p < {doc['statistic_bounds'][0]:.3g} or"
+           f" p > {doc['statistic_bounds'][1]:.4g}: level {doc['nominal_level']:.2g} over all)"
+           if "statistic_bounds" in doc else
+           f" data sets; misfit when p < {s['lower']:g} or p > {s['upper']:g})")
     ]
     lines.append(f"  {'statistic':<15}{'observed':>10}   {'replicated 90%':<22}{'p':>6}")
     for row in doc["statistics"]:
