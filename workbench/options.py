@@ -61,9 +61,23 @@ def current_command() -> str | None:
     return _COMMAND.get()
 
 
+#: Flags a command spells differently (``workbench predict --trials`` is ``predict_trials``).
+_ALIASES: contextvars.ContextVar[dict] = contextvars.ContextVar("aliases", default={})
+
+
+@contextlib.contextmanager
+def aliases(**flags: str) -> Iterator[None]:
+    """Within the block, messages name option ``name`` by the flag ``flags[name]``."""
+    token = _ALIASES.set({**_ALIASES.get(), **flags})
+    try:
+        yield
+    finally:
+        _ALIASES.reset(token)
+
+
 def flag_of(name: str) -> str:
-    """``target_accept`` -> ``--target-accept``."""
-    return "--" + name.replace("_", "-")
+    """``target_accept`` -> ``--target-accept`` (or the flag the current command uses)."""
+    return _ALIASES.get().get(name) or "--" + name.replace("_", "-")
 
 
 def label(name: str) -> str:

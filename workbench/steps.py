@@ -8,6 +8,8 @@ report inside the same update, so no file describes settings run.json does not h
 
 from __future__ import annotations
 
+import json
+import os
 import time
 from pathlib import Path
 
@@ -21,13 +23,8 @@ from .io import runfolder
 from .io.runfolder import FolderParts
 from .models import DataError, attr, counts_of, versions
 from .options import FIT_OPTIONS, RANK_NAMES, current_command
+from .report import render_into
 from .results import Run, RunFolder
-
-def render_into(folder: Path):
-    from .report.render import render_into as render  # TODO(issue 9): top-level import
-
-    return render(folder)
-
 
 #: keys of run.json written from a fitted run's record parts
 RECORD_PARTS = ("ranking", "verification", "retry", "sampling", "prediction")
@@ -83,7 +80,7 @@ def write_run(run: Run, out: str | Path, *, report: bool = False) -> Path:
     """Write the run folder atomically (with its report when asked); returns its path."""
     out = Path(out)
     runfolder.clean_staging(out.parent, out.name)
-    then = (lambda staging: render_into(staging)) if report else None
+    then = (lambda staging: render_into(staging, final=out)) if report else None
     runfolder.write_folder(out, parts_of(run), then=then)
     run.path = out
     return out
@@ -94,14 +91,13 @@ def open_run(path: str | Path) -> RunFolder:
     return RunFolder(runfolder.read_folder(path))
 
 
-def _rerender(staging: Path) -> str:
-    render_into(staging)
-    return "report rewritten to match the new tables"
-
-
 def _update(folder: RunFolder, what: str, **changes) -> dict:
+    def rerender(staging: Path) -> str:
+        render_into(staging, final=folder.path)
+        return "report rewritten to match the new tables"
+
     return runfolder.update_folder(
-        folder.path, step=runfolder.step_entry(current_command(), what), derived=_rerender,
+        folder.path, step=runfolder.step_entry(current_command(), what), derived=rerender,
         **changes,
     )
 
@@ -134,7 +130,8 @@ def rank_folder(path: str | Path, **given):
         values[name] = value if value is not None else settings.get(
             name, FIT_OPTIONS[name].default)
     opts = rank_options(**values)
-    draws = group_draws(folder.idata, folder.estimates, target=opts.target)
+    # the estimates' prob_above_target column refers to the recorded target, not the new one
+    draws = group_draws(folder.idata, folder.estimates, target=settings.get("target"))
     result = compute_ranking(draws, opts)
     result.final = folder.final
     tables = dict(result.tables)
@@ -183,15 +180,13 @@ def report_folder(path: str | Path):
     made = {}
 
     def derived(staging: Path) -> None:
-        made["report"] = render_into(staging)
+        made["report"] = render_into(staging, final=folder.path)
 
     runfolder.update_folder(
         folder.path, step=runfolder.step_entry(current_command(), "wrote the report"),
         then=derived,
     )
-    report = made["report"]
-    report.path = runfolder.path_of(folder.path, "report")
-    return report
+    return made["report"]
 
 
 def _labels(paths: list[Path]) -> list[str]:
@@ -235,3 +230,221 @@ def write_comparison(out: str | Path, runs: dict[str, Run], comparison) -> Path:
                                          comparison.to_dict())
 
     return runfolder.replace_folder(out, fill, kind="comparison", marker=marker)
+
+
+# -- audit: prior sensitivity and simulation-based calibration ---------------------------------
+
+SENSITIVITY_NOTE = "prior sensitivity:"
+
+
+def _audit_settings(folder: RunFolder, what: str):
+    """The run's recorded settings, checked; refuses runs whose counts alone cannot refit."""
+    from .models import ParameterError
+    from .options import FitSettings
+
+    recorded = folder.contents.settings
+    settings = FitSettings.from_options(**{k: v for k, v in recorded.items() if k in FIT_OPTIONS})
+    if settings["covariates"] or settings["parent"] is not None:
+        raise ParameterError(
+            f"{what} refits from the run's counts alone; this run uses covariates or parents,"
+            " which it does not handle yet: audit a run without them."
+        )
+    seed = folder.record.get("random_seed")
+    return settings.replace(seed=seed) if settings["seed"] is None and seed is not None \
+        else settings
+
+
+def _notes_with(record: dict, note: str | None) -> list[str]:
+    kept = [n for n in record.get("notes", []) if not str(n).startswith(SENSITIVITY_NOTE)]
+    return kept + ([note] if note else [])
+
+
+def sensitivity_folder(path: str | Path, *, progress=None):
+    """Refit a run under the documented alternative priors; write sensitivity.csv/.json.
+
+    Every fit (the baseline, the run's own prior, too) uses the exact engine where the model
+    has one. Returns ``(RunFolder, table, summary)``; a sensitive verdict adds a note to
+    run.json's "notes".
+    """
+    from .analysis import sensitivity
+    from .models import MODELS, make_model
+    from .pipeline import model_settings
+
+    folder = consistent(open_run(path))
+    settings = _audit_settings(folder, "sensitivity")
+    model = settings["model"]
+    engine = "exact" if "exact" in MODELS[model].engines else settings["engine"]
+    counts = counts_of(folder.idata)
+    level, target = settings["level"], settings["target"]
+    top, better, fdr = int(settings["top"]), settings["better"], settings["fdr"]
+    variants = sensitivity.prior_variants(settings)
+
+    def summarised(s):
+        est = make_model(model, **model_settings(s.replace(engine=engine), counts.n_groups))
+        est.fit(counts)
+        return sensitivity.conclusions(est, level=level, target=target, fdr=fdr, top=top,
+                                       better=better)
+
+    total = len(variants) + 1
+    started = time.perf_counter()
+    baseline = summarised(settings)
+    if progress:
+        progress(1, total, time.perf_counter() - started)
+    alternatives = {}
+    for i, v in enumerate(variants, start=2):
+        alternatives[v.name] = (v, summarised(settings.replace(**v.changes)))
+        if progress:
+            progress(i, total, time.perf_counter() - started)
+    table, doc = sensitivity.compare(baseline, alternatives, top=top, target=target)
+    doc = {**doc, "model": model, "engine": engine, "level": level,
+           "seconds": round(time.perf_counter() - started, 3)}
+    note = f"{SENSITIVITY_NOTE} {doc['sentence']}" if doc["verdict"] == "sensitive" else None
+    record = {"sensitivity": {k: doc[k] for k in ("verdict", "sentence", "flag_change_groups",
+                                                  "top_k_change_groups", "engine")},
+              "notes": _notes_with(folder.record, note)}
+    _update(folder, f"prior sensitivity under {len(variants)} alternative priors",
+            tables={"sensitivity": table}, documents={"sensitivity_summary": doc},
+            record=record)
+    return open_run(path), table, doc
+
+
+class CalibrationInterrupted(Exception):
+    """Raised when a calibration is stopped: finished replicates are kept for a rerun."""
+
+    def __init__(self, done: int, total: int, staging: Path) -> None:
+        super().__init__(f"{done} of {total} replicates kept in {staging}")
+        self.done, self.total, self.staging = done, total, staging
+
+
+def _read_staging(staging: Path, key: str) -> dict[int, dict]:
+    """Finished replicates of this plan; a torn last line (a killed write) is ignored."""
+    if not staging.exists():
+        return {}
+    done = {}
+    for line in staging.read_text(encoding="utf-8").splitlines(keepends=True):
+        if not line.endswith("\n"):
+            continue
+        try:
+            entry = json.loads(line)
+        except json.JSONDecodeError:
+            continue
+        if isinstance(entry, dict) and entry.get("plan") == key and "result" in entry:
+            done[int(entry["result"]["index"])] = entry["result"]
+    return done
+
+
+def _append_line(staging: Path, entry: dict) -> None:
+    """One JSON line, written by a single append: a reader sees it whole or not at all."""
+    data = (json.dumps(entry, default=_json_default) + "\n").encode("utf-8")
+    fd = os.open(staging, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, data)
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _json_default(value):
+    if hasattr(value, "item"):
+        return value.item()
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(type(value).__name__)
+
+
+def _workers(workers: int | None) -> int:
+    if workers is not None:
+        return max(1, int(workers))
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:
+        return max(1, os.cpu_count() or 1)
+
+
+def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 8,
+                     rank_draws: int = 99, engine: str | None = None, seed: int | None = None,
+                     target: float | None = None, workers: int | None = None, progress=None,
+                     fitter=None):
+    """Simulation-based calibration of a run's model and engine on its own trial counts.
+
+    Replicate i always uses the same seed (from ``seed``, else the run's), so a stopped
+    calibration resumes where it stopped: finished replicates are appended, one JSON line
+    each, to the folder's staging file, and a rerun with the same settings keeps them. When
+    all are done the tables land in the folder in one update and the staging file goes.
+    ``fitter(plan, counts, seed)`` replaces the model's fit (tests inject broken engines);
+    it must be picklable to run in worker processes. Returns ``(RunFolder, Calibration)``.
+    """
+    import concurrent.futures as futures
+    import math
+    import multiprocessing
+
+    from .analysis import calibration
+    from .models import MODELS
+    from .pipeline import model_settings
+
+    from .options import Number
+
+    simulations = Number(1, 100_000, whole=True)("simulations", simulations)
+    groups = Number(0, 10_000, whole=True)("tracked_groups", groups)
+    rank_draws = Number(9, 10_000, whole=True)("rank_draws", rank_draws)
+    folder = consistent(open_run(path))
+    settings = _audit_settings(folder, "calibrate")
+    if engine is not None:
+        settings = settings.replace(engine=engine)
+    used = settings["engine"]
+    if used == "auto":
+        used = MODELS[settings["model"]].engines[0]
+    counts = counts_of(folder.idata)
+    estimator = model_settings(settings.replace(engine=used), counts.n_groups)
+    if used == "exact" and settings["draws"] is None:
+        estimator["draws"] = max(1, math.ceil(rank_draws / int(settings["chains"])))
+    base_seed = seed if seed is not None else int(folder.record.get("random_seed") or 0)
+    target = settings["target"] if target is None else FIT_OPTIONS["target"].validate(target)
+    plan = calibration.make_plan(settings["model"], estimator, counts.names, counts.trials,
+                                 groups=groups, draws=rank_draws, seed=base_seed,
+                                 target=target, fdr=settings["fdr"])
+    staging = runfolder.path_of(folder.path, "calibration_staging")
+    done = _read_staging(staging, plan.key())
+    if not done and staging.exists():
+        staging.unlink()  # replicates of other settings: start afresh
+    todo = [i for i in range(simulations) if i not in done]
+    done = {i: r for i, r in done.items() if i < simulations}
+    started = time.perf_counter()
+
+    def finished(result: dict) -> None:
+        _append_line(staging, {"plan": plan.key(), "result": result})
+        done[int(result["index"])] = result
+        if progress:
+            progress(len(done), simulations, time.perf_counter() - started)
+
+    if progress and done:
+        progress(len(done), simulations, 0.0)
+    n_workers = min(_workers(workers), max(1, len(todo)))
+    try:
+        if n_workers <= 1:
+            for i in todo:
+                finished(calibration.run_replicate(plan, i, fitter))
+        else:
+            method = "fork" if used == "exact" else "spawn"
+            context = multiprocessing.get_context(method)
+            with futures.ProcessPoolExecutor(n_workers, mp_context=context) as pool:
+                pending = [pool.submit(calibration.run_replicate, plan, i, fitter) for i in todo]
+                try:
+                    for f in futures.as_completed(pending):
+                        finished(f.result())
+                except BaseException:
+                    for f in pending:
+                        f.cancel()
+                    raise
+    except KeyboardInterrupt:
+        raise CalibrationInterrupted(len(done), simulations, staging) from None
+    result = calibration.summarise(plan, list(done.values()), engine=used)
+    doc = {**result.summary, "wall_seconds": round(time.perf_counter() - started, 3),
+           "workers": n_workers}
+    result.summary = doc
+    _update(folder, f"simulation-based calibration, {simulations} replicates",
+            tables={"calibration": result.ranks, "calibration_replicates": result.replicates},
+            documents={"calibration_summary": doc},
+            record={"calibration": {k: doc[k] for k in ("verdict", "sentence", "model",
+                                                        "engine", "replicates")}})
+    return open_run(path), result

@@ -5,7 +5,9 @@ from __future__ import annotations
 import numpy as np
 
 from workbench.models import GroupCounts
-from workbench import api
+from workbench import api, steps
+from workbench.options import FitSettings
+from workbench.pipeline import default_draws
 from workbench.io.inputs import LoadedData
 
 
@@ -21,7 +23,7 @@ def test_no_detectable_spread_is_said_in_words():
     n = np.full(50, 2000)
     run = api.fit(_loaded(rng.binomial(n, 0.1), n), seed=1, checks=False)
     assert any("no clearly detectable between-group spread" in m for m in run.messages)
-    assert any("between-group spread" in note for note in run.record()["notes"])
+    assert any("between-group spread" in note for note in steps.record_of(run)["notes"])
 
 
 def test_real_spread_gets_no_such_note():
@@ -33,9 +35,9 @@ def test_real_spread_gets_no_such_note():
 
 
 def test_default_draws_bound_exact_storage():
-    settings = {"draws": None, "model": "beta-binomial", "engine": "auto", "chains": 4}
-    assert api.default_draws(settings, 1000) == 1000
-    assert api.default_draws(settings, 100_000) == 250
-    assert api.default_draws(settings, 10_000_000) == 100
-    assert api.default_draws({**settings, "engine": "mcmc"}, 100_000) == 1000
-    assert api.default_draws({**settings, "draws": 77}, 100_000) == 77
+    settings = FitSettings.from_options(model="beta-binomial", engine="auto")
+    assert default_draws(settings, 1000) == 1000
+    assert default_draws(settings, 100_000) == 250
+    assert default_draws(settings, 10_000_000) == 100
+    assert default_draws(settings.replace(engine="mcmc"), 100_000) == 1000
+    assert default_draws(settings.replace(draws=77), 100_000) == 77

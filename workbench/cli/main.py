@@ -1,7 +1,9 @@
 """Command line: argparse over the public API. Prints, writes, exits.
 
-Exit codes: 0 success; 2 bad input or usage (one ``error:`` line on stderr); 3 the run was
-written but its convergence verdict is ``not-ready`` (nothing in it is final).
+Exit codes: 0 success (verdict ``ready``); 2 bad input or usage (one ``error:`` line on
+stderr); 3 the run was written but is not final: its verdict is ``not-ready`` (convergence or
+too few draws) or ``misfit`` (the model checks say the model does not reproduce the data).
+The last line of a fit says which.
 
 Every option's flag, help and check come from its one declaration in
 :mod:`workbench.options`; values are taken as text and checked there, so a bad value is
@@ -256,8 +258,9 @@ def build_parser() -> argparse.ArgumentParser:
         prog="workbench",
         description="Estimate and rank a success rate across many groups with partial pooling;"
                     " check convergence and fit before anything is reported.",
-        epilog="Exit codes: 0 success; 2 bad input or usage; 3 written but not final"
-               " (convergence verdict not-ready).",
+        epilog="Exit codes: 0 success (verdict ready); 2 bad input or usage; 3 written but"
+               " not final (verdict not-ready: convergence or too few draws; or misfit: the"
+               " model checks say the model does not reproduce the data).",
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     main_files = ", ".join(FILES[n] for n in ("estimates", "population", "diagnostics",

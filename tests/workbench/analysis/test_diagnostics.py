@@ -13,8 +13,8 @@ from workbench.analysis.diagnostics import (
     Thresholds,
     diagnose,
     first_remedy_settings,
-    format_diagnostics,
 )
+from workbench.cli.text import format_diagnostics
 
 COUNTS = GroupCounts(["a", "b", "c"], [1, 5, 9], [10, 10, 10])
 

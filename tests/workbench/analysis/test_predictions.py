@@ -132,9 +132,9 @@ def test_cli_predict_every_model(data_csv, tmp_path, capsys, model, engine):
 @pytest.mark.parametrize(
     "argv, match",
     [
-        (["predict", "{folder}", "--trials", "ten"], "trials='ten'"),
-        (["predict", "{folder}", "--trials", "0"], "trials=0"),
-        (["predict", "{folder}", "--trials", "5", "--level", "95"], "level=95"),
+        (["predict", "{folder}", "--trials", "ten"], "--trials ten"),
+        (["predict", "{folder}", "--trials", "0"], "--trials 0"),
+        (["predict", "{folder}", "--trials", "5", "--level", "95"], "--level 95"),
         (["predict", "{missing}", "--trials", "5"], "is not a run folder"),
     ],
 )

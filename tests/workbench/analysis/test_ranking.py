@@ -16,12 +16,12 @@ from scipy import integrate, stats
 from workbench.models import BetaBinomial, CompletePooling, NoPooling
 from workbench.models._mixture import BetaPosteriors
 from workbench import api, cli
-from workbench.analysis import ranking
+from workbench.analysis import decisions, draws, funnel, ranking, ranks, targets
 
 
-def _inp(model, counts) -> ranking.RankInput:
+def _inp(model, counts) -> draws.GroupDraws:
     th = model.idata_.posterior["theta"].values
-    return ranking.RankInput(
+    return draws.GroupDraws(
         names=counts.names.astype(str),
         successes=counts.successes,
         trials=counts.trials,
@@ -41,8 +41,8 @@ def test_rank_quantiles_equal_numpy_inverted_cdf(histogram_cells, chunk_cells):
     rng = np.random.default_rng(11)
     theta = rng.beta(3, 9, size=(401, 37))
     theta[:, 5] = theta[:, 6]  # a tie in every draw
-    dense = ranking.draw_ranks(theta)
-    got = ranking.rank_summary(
+    dense = ranks.draw_ranks(theta)
+    got = ranks.rank_summary(
         theta, level=0.9, histogram_cells=histogram_cells, chunk_cells=chunk_cells
     )
     lo, med, hi = np.quantile(dense, [0.05, 0.5, 0.95], axis=0, method="inverted_cdf")
@@ -56,8 +56,8 @@ def test_draw_ranks_match_scipy_rankdata_average():
     # reference: scipy.stats.rankdata(method="average"), the usual tie convention
     rng = np.random.default_rng(2)
     theta = rng.integers(0, 6, size=(50, 20)) / 10.0  # many ties
-    high = ranking.draw_ranks(theta, "higher")
-    low = ranking.draw_ranks(theta, "lower")
+    high = ranks.draw_ranks(theta, "higher")
+    low = ranks.draw_ranks(theta, "lower")
     np.testing.assert_array_equal(high, stats.rankdata(-theta, method="average", axis=1))
     np.testing.assert_array_equal(low, stats.rankdata(theta, method="average", axis=1))
 
@@ -69,18 +69,18 @@ def test_prob_best_k_sums_to_k(tied):
     theta = rng.beta(2, 5, size=(300, 23))
     if tied:
         theta = np.round(theta, 1)
-    got = ranking.rank_summary(theta, top=4)
+    got = ranks.rank_summary(theta, top=4)
     assert got.prob_best_k.sum() == pytest.approx(4, abs=1e-9)
     assert got.prob_worst_k.sum() == pytest.approx(4, abs=1e-9)
     if not tied:  # without ties it is the plain share of draws with rank <= k
-        dense = ranking.draw_ranks(theta)
+        dense = ranks.draw_ranks(theta)
         np.testing.assert_allclose(got.prob_best_k, (dense <= 4).mean(axis=0))
         np.testing.assert_allclose(got.prob_worst_k, (dense >= 20).mean(axis=0))
 
 
 def test_top_capped_at_number_of_groups():
     theta = np.random.default_rng(0).random((50, 3))
-    got = ranking.rank_summary(theta, top=10)
+    got = ranks.rank_summary(theta, top=10)
     assert got.k == 3
     np.testing.assert_allclose(got.prob_best_k, 1.0)
 
@@ -106,7 +106,7 @@ def test_rank_intervals_cover_true_ranks():
     for seed in range(3):
         counts, truth = simulate(groups=120, trials=(5, 200), seed=100 + seed)
         model = BetaBinomial(engine="exact", draws=500, chains=2, random_seed=seed).fit(counts)
-        got = ranking.rank_summary(_inp(model, counts).theta, level=0.95)
+        got = ranks.rank_summary(_inp(model, counts).theta, level=0.95)
         true_rank = stats.rankdata(-truth)
         covered.append(np.mean((got.rank_lower <= true_rank) & (true_rank <= got.rank_upper)))
     assert 0.90 <= np.mean(covered) <= 0.99, covered
@@ -119,10 +119,10 @@ def test_fdr_flags_by_definition():
     # Bayesian FDR rule (Newton et al. 2004), by hand: running means of 1 - P over the sorted
     # list are 0.01, 0.03, 0.0533, 0.115, ...; at level 0.10 the first three are flagged
     prob = np.array([0.4, 0.95, 0.99, 0.7, 0.9])
-    mask, share = ranking.fdr_flags(prob, 0.10)
+    mask, share = targets.fdr_flags(prob, 0.10)
     np.testing.assert_array_equal(mask, [False, True, True, False, True])
     assert share == pytest.approx((0.01 + 0.05 + 0.10) / 3)
-    mask, share = ranking.fdr_flags(np.array([0.3, 0.2]), 0.9)  # none eligible (P <= 1/2)
+    mask, share = targets.fdr_flags(np.array([0.3, 0.2]), 0.9)  # none eligible (P <= 1/2)
     assert not mask.any() and share == 0
 
 
@@ -143,7 +143,7 @@ def test_target_flags_false_share_within_level(target_runs):
     level, target = 0.10, 0.2
     shares = []
     for counts, truth, p_above in target_runs:
-        table, doc = ranking.target_tables(counts.names, p_above, target, level)
+        table, doc = targets.target_tables(counts.names, p_above, target, level)
         above = table["target_flag"].to_numpy() == "above target"
         below = table["target_flag"].to_numpy() == "below target"
         flagged = above.sum() + below.sum()
@@ -188,7 +188,7 @@ def test_pairwise_matches_numerical_integration():
     counts, _ = simulate(groups=6, trials=(20, 80), seed=21)
     model = NoPooling(draws=2000, chains=2, random_seed=3).fit(counts)
     inp = _inp(model, counts)
-    table = ranking.pairwise_table(inp.theta, inp.names, np.array([0, 1, 2]), "higher")
+    table = ranks.pairwise_table(inp.theta, inp.names, np.array([0, 1, 2]), "higher")
     al, be = model.exact_.alpha, model.exact_.beta
     for row in table.itertuples():
         i, j = (int(np.flatnonzero(inp.names == g)[0]) for g in (row.group_a, row.group_b))
@@ -199,7 +199,7 @@ def test_pairwise_matches_numerical_integration():
         )
         se = np.sqrt(exact * (1 - exact) / inp.n_draws)
         assert abs(row.prob_a_better - exact) <= 4 * se + 1e-3
-    lower = ranking.pairwise_table(inp.theta, inp.names, np.array([0, 1]), "lower")
+    lower = ranks.pairwise_table(inp.theta, inp.names, np.array([0, 1]), "lower")
     np.testing.assert_allclose(lower["prob_a_better"], 1 - table["prob_a_better"].iloc[[0, 2]])
 
 
@@ -210,7 +210,7 @@ def test_funnel_limits_are_binomial_quantiles():
     # reference: scipy.stats.binom.ppf, and the quantile's definition through binom.cdf
     trials = np.array([1, 7, 30, 120, 999])
     p = 0.17
-    limits = ranking.control_limits(trials, p)
+    limits = funnel.control_limits(trials, p)
     for label, mass in (("95", 0.95), ("998", 0.998)):
         alpha = 1 - mass
         lo = limits[f"lower_{label}"] * trials
@@ -228,7 +228,7 @@ def test_funnel_flags_and_curve():
     model = NoPooling(draws=100, chains=1, random_seed=1).fit(counts)
     inp = _inp(model, counts)
     pooled = counts.successes.sum() / counts.trials.sum()
-    table, curve = ranking.funnel_tables(inp, pooled)
+    table, curve = funnel.funnel_tables(inp, pooled)
     rate = counts.successes / counts.trials
     assert list(table["outside_998"][rate > table["upper_998"]]) == ["high"] * int(
         (rate > table["upper_998"]).sum()
@@ -257,7 +257,7 @@ def test_settle_chance_equals_summed_betabinomial_pmf():
             p_above = stats.beta.sf(t, ai + y, bi + m - y)
             settled = (p_above > 0.95) | (p_above < 0.05)
             want.append(stats.betabinom.pmf(y, m, ai, bi)[settled].sum())
-        np.testing.assert_allclose(ranking.settle_chance(a, b, np.full(3, m), t), want, atol=1e-10)
+        np.testing.assert_allclose(decisions.settle_chance(a, b, np.full(3, m), t), want, atol=1e-10)
 
 
 def test_trials_needed_agrees_with_monte_carlo_preposterior():
@@ -267,7 +267,7 @@ def test_trials_needed_agrees_with_monte_carlo_preposterior():
     model = NoPooling(draws=50, chains=1, random_seed=2).fit(counts)
     inp = _inp(model, counts)
     target = 0.2
-    table, doc = ranking.trials_needed_table(inp, target, chance=0.8, max_trials=20_000)
+    table, doc = decisions.trials_needed_table(inp, target, chance=0.8, max_trials=20_000)
     rng = np.random.default_rng(9)
     al, be = model.exact_.alpha, model.exact_.beta
     checked = 0
@@ -282,7 +282,7 @@ def test_trials_needed_agrees_with_monte_carlo_preposterior():
         assert abs(mc - row["prob_settled"]) <= 4 * np.sqrt(0.2 * 0.8 / 20_000), (j, m, mc)
         assert row["prob_settled"] >= 0.8
         if m > 1:  # one trial fewer falls short (the search's last miss)
-            assert ranking.settle_chance(al[j : j + 1], be[j : j + 1], m - 1, target)[0] < 0.8
+            assert decisions.settle_chance(al[j : j + 1], be[j : j + 1], m - 1, target)[0] < 0.8
         checked += 1
     assert checked >= 3
     assert doc["settles_with_more_trials"] == checked
@@ -291,7 +291,7 @@ def test_trials_needed_agrees_with_monte_carlo_preposterior():
 def test_trials_needed_statuses():
     # a group far above the target with much data is already settled; one centred on the
     # target with few allowed trials is not settled within them
-    inp = ranking.RankInput(
+    inp = draws.GroupDraws(
         names=np.array(["far", "on-target"]),
         successes=np.array([600, 20]),
         trials=np.array([1000, 100]),
@@ -299,7 +299,7 @@ def test_trials_needed_statuses():
         posterior_mean=np.array([0.6, 0.2]),
         closed=BetaPosteriors(np.array([601.0, 20.0]), np.array([401.0, 80.0])),
     )
-    table, _ = ranking.trials_needed_table(inp, 0.2, max_trials=50)
+    table, _ = decisions.trials_needed_table(inp, 0.2, max_trials=50)
     assert list(table["status"]) == ["already settled", "not within 50 trials"]
     assert table["trials_needed"].iloc[0] == 0 and pd.isna(table["trials_needed"].iloc[1])
     assert table["prob_settled"].iloc[1] < 0.8
@@ -311,11 +311,11 @@ def test_trials_needed_statuses():
 @pytest.mark.parametrize(
     "kwargs, match",
     [
-        ({"top": "0"}, "top=0"),
+        ({"top": "0"}, "top='0'"),
         ({"top": "x"}, "top='x'"),
         ({"better": "up"}, "better='up'"),
         ({"fdr": 1.5}, "fdr=1.5"),
-        ({"compare": "only-one"}, "fewer than two"),
+        ({"compare_groups": "only-one"}, "fewer than two"),
     ],
 )
 def test_bad_options_name_the_setting(kwargs, match):
@@ -439,9 +439,9 @@ def test_cli_rank_compare_groups(folders, capsys):
     "argv, match",
     [
         (["rank", "{missing}"], "is not a run folder"),
-        (["rank", "{folder}", "--top", "many"], "top='many'"),
-        (["rank", "{folder}", "--better", "sideways"], "better='sideways'"),
-        (["rank", "{folder}", "--fdr", "2"], "fdr=2"),
+        (["rank", "{folder}", "--top", "many"], "--top many"),
+        (["rank", "{folder}", "--better", "sideways"], "--better sideways"),
+        (["rank", "{folder}", "--fdr", "2"], "--fdr 2"),
         (["rank", "{folder}", "--compare-groups", "unit-001,nobody"], "'nobody' is not in the run"),
     ],
 )
@@ -500,5 +500,5 @@ def test_cli_fit_bad_ranking_option_one_error_line(data_csv, tmp_path, capsys, o
     folder = tmp_path / "run"
     assert _fit_folder(data_csv, folder, "no-pooling", "exact", option, value) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith(f"error: {option[2:]}=")
+    assert len(err) == 1 and err[0].startswith(f"error: {option} {value}: ")
     assert not folder.exists()  # checked before anything is fitted or written
