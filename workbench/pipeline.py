@@ -17,7 +17,7 @@ import pandas as pd
 
 from .analysis import verify as verification
 from .analysis.checks import check_posterior
-from .analysis.diagnostics import diagnose, first_remedy_settings
+from .analysis.diagnostics import MISFIT, diagnose, first_remedy_settings, include_checks
 from .analysis.draws import group_draws
 from .analysis.predictions import default_seed, predict
 from .analysis.ranking import compute as compute_ranking
@@ -339,13 +339,16 @@ def fit_run(source, settings: FitSettings) -> Run:
         verify_run(run)
     if settings["checks"]:
         add_checks(run)
+    include_checks(diagnostics, run.documents.get("checks"))
     add_ranking(run)
     if settings["predict_trials"] is not None:
         add_predictions(run)
     run.seconds = time.perf_counter() - started
     if not diagnostics.ready:
         warnings.warn(
-            "convergence diagnostics failed; the results are not final: "
+            ("the model checks found a misfit" if diagnostics.verdict == MISFIT
+             else "convergence diagnostics failed")
+            + "; the results are not final: "
             + "; ".join(r["text"] for r in diagnostics.reasons[:3]),
             ConvergenceWarning,
             stacklevel=3,

@@ -1,4 +1,23 @@
-"""Convergence diagnostics and the verdict: nothing is final while it says ``not-ready``.
+"""Convergence diagnostics and the verdict: nothing is final unless it says ``ready``.
+
+The verdict covers everything a reader relies on, in three states:
+
+- ``ready``: the sampler converged (MCMC), there are enough independent draws for every
+  number computed from draws (ranks, P(best k), draw-based target flags, check p-values), and
+  the model checks found no misfit (or were not run, which the notes say);
+- ``not-ready``: convergence or the number of draws fails (the numbers are not yet computed
+  well enough to read);
+- ``misfit``: the numbers are computed well, but the posterior predictive checks say the model
+  does not reproduce the data (the numbers answer the wrong model's question).
+
+Only ``ready`` is final. The command line exits 3 on both other states and says which.
+
+Enough draws: a probability estimated from S independent draws has Monte Carlo sd at most
+0.5 / sqrt(S); at the pass mark of 400 effective draws that is 0.025, small against the 0.9
+and 0.5 cut-offs P(best k) and the target flags are read at, and a check p-value at the
+misfit bound 0.002 from 400 replicates is at least one replicate beyond it. Exact engines draw
+independently, so their effective draws are the stored draws (chains x draws): fewer than
+400 is not ready however the closed forms behave.
 
 R-hat (rank-normalised split), bulk and tail ESS and MCSE come from ArviZ, computed once
 over whole arrays. Per run: divergences, tree-depth hits and E-BFMI per chain. The exact
@@ -22,6 +41,13 @@ with warnings.catch_warnings():
 
 READY = "ready"
 NOT_READY = "not-ready"
+MISFIT = "misfit"
+#: what each verdict means, in words (run.json, NOT-FINAL.txt, the terminal)
+MEANINGS = {
+    READY: "converged, enough draws, and the model checks found no misfit",
+    NOT_READY: "the numbers are not computed well enough yet: convergence or too few draws",
+    MISFIT: "computed well, but the model checks say the model does not reproduce the data",
+}
 
 
 @dataclass(frozen=True)
@@ -37,6 +63,8 @@ class Thresholds:
     treedepth_share: float = 0.01
     grid_edge_density: float = 1e-8
     grid_refinement_change: float = 1e-6
+    independent_draws: int = 400
+    replicates: int = 400
 
 
 @dataclass
@@ -60,6 +88,7 @@ class Diagnostics:
         return {
             "verdict": self.verdict,
             "final": self.ready,
+            "meaning": MEANINGS.get(self.verdict, ""),
             "reasons": self.reasons,
             "remedies": self.remedies,
             "notes": self.notes,
@@ -214,6 +243,15 @@ def diagnose(idata, thresholds: Thresholds | None = None) -> Diagnostics:
         for r in sampler_reasons:
             reasons.remove(r)
             notes.append("by chance on independent draws: " + r["text"])
+        total = int(run["chains"]) * int(run["draws_per_chain"])
+        if total < th.independent_draws:
+            fail("draws", "independent draws", total, th.independent_draws, "below")
+            reasons[-1]["text"] = (
+                f"draws: {total} independent draws is below the {th.independent_draws} needed"
+                " for ranks, P(best k), flags and check p-values (Monte Carlo sd of a"
+                f" probability up to {0.5 / np.sqrt(max(total, 1)):.3f}, against"
+                f" {0.5 / np.sqrt(th.independent_draws):.3f} at {th.independent_draws})"
+            )
         edge = attr(idata, "grid_edge_density")
         change = attr(idata, "grid_refinement_change")
         if edge is not None and float(edge) > th.grid_edge_density:
@@ -248,6 +286,10 @@ def remedies_for(reasons: list[dict], idata) -> list[str]:
         out.append("more tuning (--tune 2000); the posterior may be nearly flat in one direction")
     if model == "beta-binomial" and attr(idata, "engine") == "mcmc" and out:
         out.append("use the exact engine, which this model has (--engine exact)")
+    if "independent draws" in checks:
+        chains = int(idata.posterior.sizes["chain"])
+        out.append(f"store more draws (--draws {-(-Thresholds().independent_draws // chains)}"
+                   " or more)")
     if checks & {"density at the grid edge", "change of posterior means under refinement"}:
         out.append("the grid could not be made fine or wide enough; cross-check with --engine mcmc")
     return out
@@ -266,7 +308,51 @@ def first_remedy_settings(diagnostics: Diagnostics, settings: dict) -> tuple[dic
         new["tune"] = max(2 * int(settings.get("tune") or 1000), 1000)
         new["draws"] = max(2 * int(settings.get("draws") or 1000), 1000)
         return new, f"retried with --tune {new['tune']} --draws {new['draws']}"
+    if first.startswith("store more draws"):
+        new["draws"] = max(int(settings.get("draws") or 0) * 2, 1000)
+        return new, f"retried with --draws {new['draws']}"
     if first.startswith("use the exact engine"):
         new["engine"] = "exact"
         return new, "retried with --engine exact"
     return None
+
+
+def include_checks(diagnostics: Diagnostics, checks: dict | None) -> Diagnostics:
+    """Fold the model checks (the content of checks.json) into the verdict, in place.
+
+    A misfit makes a ``ready`` verdict ``misfit`` (a ``not-ready`` one stays not-ready, with
+    the misfit added to its reasons); check p-values from fewer than
+    ``Thresholds.replicates`` replicated data sets make it ``not-ready``. Without checks the
+    verdict stands and a note says the model was not checked.
+    """
+    th = diagnostics.thresholds
+    if not checks:
+        note = "the model checks were not run: the verdict covers convergence and draws only"
+        if note not in diagnostics.notes:
+            diagnostics.notes.append(note)
+        return diagnostics
+    diagnostics.reasons = [r for r in diagnostics.reasons if r.get("quantity") != "model checks"]
+    replicated = int(checks.get("replicated_draws") or 0)
+    if replicated < th.replicates and checks.get("statistics"):
+        diagnostics.reasons.append({
+            "quantity": "model checks", "check": "replicated data sets", "value": replicated,
+            "threshold": th.replicates, "by": th.replicates - replicated,
+            "text": f"model checks: {replicated} replicated data sets is below the"
+                    f" {th.replicates} their p-values need (--replicates, --draws)",
+        })
+        if diagnostics.verdict == READY:
+            diagnostics.verdict = NOT_READY
+    if checks.get("verdict") == MISFIT:
+        names = ", ".join(checks.get("misfit_statistics", []))
+        diagnostics.reasons.append({
+            "quantity": "model checks", "check": "posterior predictive checks", "value": None,
+            "threshold": checks.get("nominal_level"), "by": None,
+            "text": f"model checks: misfit on {names} (the model does not reproduce the data)",
+        })
+        remedy = ("compare other pooling choices (workbench compare) and report a model whose"
+                  " checks are consistent")
+        if remedy not in diagnostics.remedies:
+            diagnostics.remedies.append(remedy)
+        if diagnostics.verdict == READY:
+            diagnostics.verdict = MISFIT
+    return diagnostics

@@ -11,14 +11,24 @@ import numpy as np
 import pandas as pd
 
 from ..analysis.ranking import NEW_GROUP_LABEL
+from ..analysis.diagnostics import MEANINGS, READY
 from ..analysis.settings import MISFIT, NOT_COMPUTED
 from ..cautions import TERMINAL_CAUTION
 from ..models import attr
 
 
 def format_written(run, out: Path) -> str:
-    """The last line of a fit: where the run folder is and whether it is final."""
-    return f"wrote {out}/ ({'final' if run.ready else 'NOT FINAL: diagnostics failed'})"
+    """The last line of a fit: where the run folder is and whether it is final (and why not)."""
+    return f"wrote {out}/ ({final_words(run.diagnostics.verdict)})"
+
+
+def final_words(verdict: str) -> str:
+    """'final', or NOT FINAL with the reason the verdict gives."""
+    if verdict == READY:
+        return "final"
+    if verdict == MISFIT:
+        return "NOT FINAL: the model checks found a misfit"
+    return "NOT FINAL: diagnostics failed"
 
 
 def format_fit(run, *, rows: int = 5) -> str:
@@ -69,21 +79,32 @@ def format_fit(run, *, rows: int = 5) -> str:
 
 
 def format_diagnostics(d) -> str:
-    """Ten-second terminal summary."""
+    """Ten-second terminal summary: convergence and draws, then the verdict over everything."""
     s = d.to_dict()["summary"]
+    sampling = [r for r in d.reasons if r.get("quantity") != "model checks"]
     lines = [
-        f"convergence: {d.verdict.upper()}  (max R-hat {s['max_r_hat'] or float('nan'):.4f},"
+        f"convergence: {'NOT-READY' if sampling else 'READY'}"
+        f"  (max R-hat {s['max_r_hat'] or float('nan'):.4f},"
         f" min bulk ESS {s['min_ess_bulk'] or float('nan'):.0f},"
         f" min tail ESS {s['min_ess_tail'] or float('nan'):.0f}"
         + (f", divergences {d.run['divergences']}" if "divergences" in d.run else "")
         + ")"
     ]
-    for r in d.reasons[:5]:
+    for r in sampling[:5]:
         lines.append(f"  - {r['text']}")
-    if d.remedies:
-        lines.append(f"  remedy: {d.remedies[0]}")
     if d.run.get("independent_draws"):
-        lines.append("  (independent draws from the exact engine: mixing holds by construction)")
+        lines.append("  (independent draws from the exact engine: mixing holds by construction;"
+                     f" {d.run['chains'] * d.run['draws_per_chain']} stored draws)")
+    lines.append(format_verdict(d))
+    return "\n".join(lines)
+
+
+def format_verdict(d) -> str:
+    """The verdict over convergence, draws and the model checks, with its first remedy."""
+    lines = [f"verdict: {d.verdict.upper()} ({MEANINGS.get(d.verdict, d.verdict)})"]
+    lines += [f"  - {r['text']}" for r in d.reasons if r.get("quantity") == "model checks"]
+    if d.remedies and d.verdict != READY:
+        lines.append(f"  remedy: {d.remedies[0]}")
     return "\n".join(lines)
 
 
