@@ -439,12 +439,18 @@ class LogitNormal(_Estimator):
     covariates, ``sigma`` the between-group sd of log-odds left after the covariates, and each
     ``beta_<column>`` the change in log-odds per sd of that column. Priors:
     alpha ~ Normal(0, 2.5), sigma ~ HalfNormal(1), beta ~ Normal(0, 1) (weakly informative on
-    the log-odds scale, common practice). MCMC only (PyMC NUTS); each group is sampled centred
-    or non-centred by its information content (see ``models._logit``).
+    the log-odds scale, common practice).
+
+    Engines: ``mcmc`` (``auto``) samples only the population parameters with PyMC NUTS,
+    each group's log-odds integrated out by adaptive Gauss-Hermite, then draws every group's
+    log-odds exactly from its conditional posterior (see ``models._collapsed``); ``latent``
+    samples every group's log-odds jointly with NUTS, each group centred or non-centred by
+    its information content (see ``models._logit``). Both give the same posterior; ``--verify``
+    fits the other one.
     """
 
     name = "logit-normal"
-    engines = ("mcmc",)
+    engines = ("mcmc", "latent")
 
     def __init__(
         self,
@@ -489,11 +495,13 @@ class LogitNormal(_Estimator):
         }
 
     def _fit(self, data, engine, seed):
+        from . import _collapsed
         from ._logit import covariate_names, population_rates, sample, standardise
 
         x, info = standardise(data.covariates, data.n_groups)
         parent_index = self._parent_index(data)
-        hyper, eta, stats_, centred = sample(
+        run = _collapsed.sample if engine == "mcmc" else sample
+        hyper, eta, stats_, facts = run(
             data.successes,
             data.trials,
             x,
@@ -524,11 +532,19 @@ class LogitNormal(_Estimator):
         for k, name in enumerate(names):
             out[name] = hyper["beta"][..., k]
         self._covariates = (x, tuple(info["columns"]))
+        if engine == "mcmc":
+            sampler = (
+                "pymc-nuts on the population parameters, group log-odds integrated out"
+                " (adaptive Gauss-Hermite) and drawn exactly given each draw"
+            )
+        else:
+            sampler = "pymc-nuts, per-group centred / non-centred log-odds"
+            facts = {"centred_groups": int(facts.sum())}
         extra = {
             "tune": self.tune,
             "target_accept": float(self.target_accept),
-            "sampler": "pymc-nuts, per-group centred / non-centred log-odds",
-            "centred_groups": int(centred.sum()),
+            "sampler": sampler,
+            **facts,
             "covariates": info,
             "covariate_effects": names,
         }
