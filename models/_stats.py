@@ -24,10 +24,20 @@ def betabinom_logpmf(y, n, a, b):
     return log_choose(n, y) + special.betaln(y + a, n - y + b) - special.betaln(a, b)
 
 
-def betabinom_cdf(y: float, n: float, a, b, w=None, *, cells: int = 2_000_000) -> float:
+#: Longest tail :func:`betabinom_cdf` sums term by term; beyond it (trials up to 1e15) the
+#: CDF comes from the Beta identity below, in constant time.
+MAX_TAIL_TERMS = 1_000_000
+#: Gauss-Hermite nodes for that identity (the integrand is smooth on the scale of the nodes)
+_HERMITE = np.polynomial.hermite.hermgauss(64)
+
+
+def betabinom_cdf(y: float, n: float, a, b, w=None, *, cells: int = 2_000_000,
+                  max_terms: int = MAX_TAIL_TERMS) -> float:
     """P(Y <= y): one Beta-binomial(n, a, b), or the mixture sum_p w_p Beta-binomial(n, a_p, b_p).
 
-    Sums the shorter tail in chunks of at most ``cells`` terms.
+    Sums the shorter tail in chunks of at most ``cells`` terms while it has at most
+    ``max_terms`` terms; a longer tail (only with both y and n - y above ``max_terms``) uses
+    :func:`_betabinom_cdf_long`.
     """
     if y < 0:
         return 0.0
@@ -36,6 +46,8 @@ def betabinom_cdf(y: float, n: float, a, b, w=None, *, cells: int = 2_000_000) -
     a = np.atleast_1d(np.asarray(a, dtype=float))
     b = np.atleast_1d(np.asarray(b, dtype=float))
     w = np.ones(1) if w is None else np.asarray(w, dtype=float)
+    if min(y + 1, n - y) > max_terms:
+        return _betabinom_cdf_long(float(y), float(n), a, b, w)
     lower_tail = y + 1 <= n - y
     first, last = (0, y) if lower_tail else (y + 1, n)
     step = max(1, cells // len(a))
@@ -44,6 +56,29 @@ def betabinom_cdf(y: float, n: float, a, b, w=None, *, cells: int = 2_000_000) -
         k = np.arange(start, min(start + step, last + 1), dtype=float)[:, None]
         mass += float(np.exp(betabinom_logpmf(k, n, a[None, :], b[None, :])).sum(axis=0) @ w)
     return min(1.0, mass) if lower_tail else max(0.0, 1.0 - mass)
+
+
+def _betabinom_cdf_long(y: float, n: float, a, b, w) -> float:
+    """P(Y <= y) when both tails are long: an identity, then Gauss-Hermite quadrature.
+
+    For Y ~ Binomial(n, p), P(Y <= y) = P(Q > p) with Q ~ Beta(y + 1, n - y) (the
+    binomial-Beta relation of the regularised incomplete Beta function). Averaging over
+    p ~ Beta(a, b) gives P(Y <= y) = E_Q[F(Q)], F the Beta(a, b) CDF (or the mixture's).
+    The expectation is taken with 64 Gauss-Hermite nodes in Q's normal scores (Q's exact
+    quantiles at the nodes), where F(Q) is smooth whatever the sizes (checked against
+    scipy.stats.betabinom in tests/models/test_stats.py).
+    """
+    x, h = _HERMITE
+    z = np.sqrt(2.0) * x
+    # Q's own quantiles at the normal nodes (exact Beta, no skewness error); where the
+    # inverse cannot be formed the normal form is used
+    with np.errstate(all="ignore"):
+        q = special.betaincinv(y + 1, n - y, special.ndtr(z))
+    mean = (y + 1) / (n + 1)
+    normal = mean + z * np.sqrt(mean * (1 - mean) / (n + 2))
+    q = np.clip(np.where(np.isfinite(q), q, normal), 0.0, 1.0)
+    f = special.betainc(a[None, :], b[None, :], q[:, None]) @ w
+    return float(np.clip((h / np.sqrt(np.pi)) @ f, 0.0, 1.0))
 
 
 def beta_from_moments(mean, var, *, floor: float = 1e-8):
