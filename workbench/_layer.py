@@ -37,3 +37,4 @@ def load_model_layer() -> None:
     except BaseException:
         del sys.modules[NAME]
         raise
+    sys.modules["workbench"].models = module  # as the import system does for a subpackage

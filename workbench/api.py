@@ -66,7 +66,7 @@ fit.__doc__ = f"""Load, fit, summarise, diagnose and rank: one run.
 The run is written to a folder only when ``out`` is given (with its report when ``report``
 is true); :func:`write_run` writes it later. Every option is declared once, in
 :mod:`workbench.options`; the command line's ``workbench fit`` takes the same ones as
-``--name-with-dashes``, and run.json records them all under "settings".
+``--name-with-dashes``, and the run record keeps them all under "settings".
 
 Parameters
 ----------

@@ -399,7 +399,7 @@ SAMPLING_OPTIONS = _options(
     ),
     Option(
         "seed", None, Optional(Number(0, MAX_SEED, whole=True)),
-        "random seed; the one used is recorded in run.json", "sampling", "N",
+        "random seed; the one used is recorded in the run record", "sampling", "N",
         "a fresh one (the demo: 1)",
     ),
     Option(
@@ -464,7 +464,7 @@ RANKING_OPTIONS = _options(
     ),
     Option(
         "compare_groups", None, Optional(Texts(comma=True)),
-        "groups for pairwise.csv", "ranking", "A,B,C", "the best 10 by posterior mean",
+        "groups for the pairwise table", "ranking", "A,B,C", "the best 10 by posterior mean",
     ),
     Option(
         "settle_chance", 0.80, RATE,
@@ -484,7 +484,7 @@ OUTPUT_OPTIONS = _options(
         "DIR", "run-<data file name>",
     ),
     Option("report", False, Switch(),
-           "also write report.html (and figures/*.png) into the run folder", "output"),
+           "also write the report (one HTML page, and its figures as PNG files) into the run folder", "output"),
 )
 
 #: ``workbench fit`` and :func:`workbench.api.fit`; run.json "settings" has exactly these keys

@@ -109,7 +109,8 @@ def consistent(folder: RunFolder) -> RunFolder:
     actual = counts_of(folder.idata).fingerprint()
     if not said or said != stored or stored != actual:
         raise DataError(
-            f"run folder {str(folder.path)!r} is inconsistent: run.json, posterior.nc and the"
+            f"run folder {str(folder.path)!r} is inconsistent: {runfolder.FILES['record']},"
+            f" {runfolder.FILES['posterior']} and the"
             f" counts inside it give data fingerprints {str(said)[:12]}, {str(stored)[:12]},"
             f" {actual[:12]}; fit it again with 'workbench fit'."
         )
@@ -361,6 +362,12 @@ def _workers(workers: int | None) -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def calibration_staging(folder: str | Path) -> Path:
+    """Where a calibration's finished replicates wait: beside the folder, named after it."""
+    folder = Path(folder)
+    return folder.parent / f".{folder.name}{runfolder.FILES['calibration_staging']}"
+
+
 def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 8,
                      rank_draws: int = 99, engine: str | None = None, seed: int | None = None,
                      target: float | None = None, workers: int | None = None, progress=None,
@@ -403,7 +410,7 @@ def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 
     plan = calibration.make_plan(settings["model"], estimator, counts.names, counts.trials,
                                  groups=groups, draws=rank_draws, seed=base_seed,
                                  target=target, fdr=settings["fdr"])
-    staging = runfolder.path_of(folder.path, "calibration_staging")
+    staging = calibration_staging(folder.path)
     done = _read_staging(staging, plan.key())
     if not done and staging.exists():
         staging.unlink()  # replicates of other settings: start afresh
@@ -447,4 +454,5 @@ def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 
             documents={"calibration_summary": doc},
             record={"calibration": {k: doc[k] for k in ("verdict", "sentence", "model",
                                                         "engine", "replicates")}})
+    staging.unlink(missing_ok=True)
     return open_run(path), result

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ..models import theta_draws
-from .ranking import NEW_GROUP_LABEL
+from ..io.runfolder import NEW_GROUP_LABEL
 
 #: draws x groups cells simulated at once
 CHUNK_CELLS = 2_000_000

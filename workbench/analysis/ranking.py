@@ -26,8 +26,6 @@ from .funnel import funnel_tables
 from .ranks import pairwise_groups, pairwise_table, rank_summary, ranks_table
 from .targets import target_tables
 
-#: the label of the new, unseen group in per-group tables (predictions)
-NEW_GROUP_LABEL = "(new group)"
 DEFAULT_PAIRWISE = 10
 RANK_COLUMNS = ["rank_median", "rank_lower", "rank_upper"]
 TARGET_COLUMNS = ["prob_above_target", "prob_below_target", "target_flag"]

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..analysis.ranking import NEW_GROUP_LABEL
+from .runfolder import NEW_GROUP_LABEL
 from ..models import DataError, GroupCounts
 from ..models.exceptions import join_problems
 

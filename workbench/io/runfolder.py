@@ -31,6 +31,8 @@ import pandas as pd
 from ..models.exceptions import DataError
 from . import atomic
 
+#: the label of the new, unseen group's row in per-group tables (predictions): a reserved name
+NEW_GROUP_LABEL = "(new group)"
 #: run.json's "workbench_run": the schema of the folder this code writes and reads.
 SCHEMA_VERSION = 2
 #: run.json's "tool": who wrote the folder.
@@ -62,8 +64,9 @@ FILES: dict[str, str] = {
     "calibration": "calibration.csv",
     "calibration_replicates": "calibration_replicates.csv",
     "calibration_summary": "calibration.json",
-    # finished calibration replicates of an unfinished run, one JSON line each; a dot-file, so
-    # no folder update carries it over: it lives only until the calibration lands
+    # finished replicates of an unfinished calibration, one JSON line each; kept BESIDE the
+    # folder as .<folder name><this> (a folder holds only files its run.json lists) until the
+    # calibration lands
     "calibration_staging": ".calibration-replicates.jsonl",
     "report": "report.html",
     "figures": "figures",

@@ -153,8 +153,8 @@ def test_cli_predict_bad_input_one_error_line(data_csv, tmp_path, capsys, argv, 
 @pytest.mark.slow
 def test_cli_predict_mcmc_folder(data_csv, tmp_path):
     folder = tmp_path / "run"
-    code = _fit(data_csv, folder, "beta-binomial", "mcmc", "--tune", "300")
-    assert code in (0, 3)
+    code = _fit(data_csv, folder, "beta-binomial", "mcmc")
+    assert code == 0  # the collapsed two-parameter posterior converges at default settings
     assert cli.main(["predict", str(folder), "--trials", "30"]) == code
     table = pd.read_csv(folder / "predictions.csv")
     assert table["is_new_group"].sum() == 1 and len(table) == 21

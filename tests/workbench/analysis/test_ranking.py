@@ -470,9 +470,9 @@ def test_cli_rank_without_target_says_so(data_csv, tmp_path, capsys):
 def test_cli_rank_on_mcmc_folder(data_csv, tmp_path, capsys):
     folder = tmp_path / "run"
     code = _fit_folder(
-        data_csv, folder, "beta-binomial", "mcmc", "--target", "0.2", "--tune", "300"
+        data_csv, folder, "beta-binomial", "mcmc", "--target", "0.2"
     )
-    assert code in (0, 3)
+    assert code == 0  # the collapsed two-parameter posterior converges at default settings
     assert cli.main(["rank", str(folder), "--top", "2"]) == code
     est = pd.read_csv(folder / "estimates.csv")
     theta = api.open_run(folder).idata.posterior["theta"].values

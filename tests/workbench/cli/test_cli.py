@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 
 import pandas as pd
 import pytest
@@ -220,7 +221,10 @@ def test_exact_and_mcmc_runs_and_verify(tmp_path, capsys):
         assert "shrinkage" in est.columns
         ver = json.loads((out / "run.json").read_text())["verification"]
         assert ver["share_within_4_mcse"] >= 0.96
-    assert capsys.readouterr().out.count("AGREE") == 2
+    out = capsys.readouterr().out
+    # each run's verify line ends "-> AGREE"; "DISAGREE" (which contains it) must not appear
+    assert len(re.findall(r"-> AGREE$", out, flags=re.MULTILINE)) == 2
+    assert "DISAGREE" not in out
 
 
 @pytest.mark.slow
