@@ -12,38 +12,6 @@ CONSISTENT = "consistent"
 MISFIT = "misfit"
 NOT_COMPUTED = "not computed"
 
-#: Columns of group_checks.csv, in order.
-GROUP_COLUMNS = [
-    "group",
-    "successes",
-    "trials",
-    "elpd_loo",
-    "loo_method",
-    "elpd_psis",
-    "elpd_exact",
-    "pareto_k",
-    "high_k",
-    "p_loo",
-    "loo_pit",
-    "loo_pit_lower",
-    "loo_pit_upper",
-]
-
-#: Models whose ``y_group`` integrates the group's own rate out (complete pooling has none).
-INTEGRATED_MODELS = (
-    "beta-binomial",
-    "no-pooling",
-    "complete-pooling",
-    "logit-normal",
-    "nested",
-)
-
-#: Fewest posterior draws for which PSIS-LOO is attempted.
-MIN_LOO_DRAWS = 50
-_THETA_EPS = 1e-12
-
-
-
 @dataclass(frozen=True)
 class CheckSettings:
     """How the checks run.

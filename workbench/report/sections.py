@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from ..cautions import REPORT_CAUTIONS
 from ..io.runfolder import FILES, FolderContents
 from ._format import Table, add_gap, fmt, page_table, pretty
 
@@ -19,16 +20,7 @@ TABLE_ROWS = 1000
 #: rows of the shorter tables (best/worst placed, groups outside the limits, trials needed)
 SHORT_ROWS = 15
 
-CAUTIONS = (
-    "Intervals overlap. Groups whose intervals overlap are not shown to differ, and neighbouring"
-    " ranks are rarely distinguishable; read every estimate and rank with its interval.",
-    "Case mix and data quality are not modelled unless covariates say so. A group that serves"
-    " harder cases, or records its outcomes differently, can look worse without being worse.",
-    "A rank is no verdict on a person or an institution. It summarises these data under this"
-    " model, nothing more.",
-    "Decisions defer to local governance and qualified review. This report is one input to"
-    " that review, never a substitute for it.",
-)
+CAUTIONS = REPORT_CAUTIONS
 
 CAUTION_SHORT = (
     "Intervals overlap; case mix and data quality are not modelled unless covariates say so; a"
