@@ -13,8 +13,9 @@ given two ways, because PyMC's default sampler forks worker processes:
   forked straight from a large parent would report the parent's size. Without
   ``/usr/bin/time`` it falls back to ``os.wait4`` on the child, with that caveat.
 
-A run over ``limit`` seconds is killed (its whole process group, which this module started)
-and returned with ``finished=False``.
+A run over ``limit`` seconds, or whose process tree grows past ``memory_limit_mb`` (so that a
+too-large case cannot exhaust a shared machine), is killed (its whole process group, which
+this module started) and returned with ``finished=False`` and ``killed_for`` "time" or "memory".
 """
 
 from __future__ import annotations
@@ -36,6 +37,7 @@ class Measured:
     """Outcome of one measured child process."""
 
     finished: bool
+    killed_for: str | None
     returncode: int | None
     wall_s: float
     tree_peak_mb: float
@@ -69,6 +71,7 @@ def run_measured(
     *,
     limit: float,
     interval: float = 0.1,
+    memory_limit_mb: float | None = None,
     env: dict | None = None,
     log_path: str | None = None,
 ) -> Measured:
@@ -96,6 +99,7 @@ def run_measured(
     watcher = psutil.Process(child.pid)
     peak = 0
     finished = True
+    killed_for = None
     status = None
     rusage = None
     while True:
@@ -104,6 +108,10 @@ def run_measured(
             break
         peak = max(peak, _tree_rss(watcher))
         if time.perf_counter() - start > limit:
+            killed_for = "time"
+        elif memory_limit_mb is not None and peak > memory_limit_mb * 2**20:
+            killed_for = "memory"
+        if killed_for:
             finished = False
             os.killpg(child.pid, signal.SIGKILL)
             _, status, rusage = os.wait4(child.pid, 0)
@@ -124,6 +132,7 @@ def run_measured(
         maxrss_kb = int(text[-1]) if text and text[-1].isdigit() else float("nan")
     return Measured(
         finished=finished,
+        killed_for=killed_for,
         returncode=child.returncode if finished else None,
         wall_s=wall,
         tree_peak_mb=peak / 2**20,

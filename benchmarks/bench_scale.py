@@ -10,8 +10,10 @@ process with a wall-time limit:
   every output file and the report);
 - ``pymc``: a plain full-joint PyMC model a user would write (mu ~ Beta(1, 1),
   kappa ~ LogNormal(log 20, 3), theta_j ~ Beta(mu kappa, (1 - mu) kappa), y_j ~ Binomial)
-  sampled with ``pm.sample(chains=4, draws=1000, tune=1000)`` and otherwise default settings
-  (on 2 cores that runs 2 chains at a time), followed by ``az.summary`` of theta;
+  sampled with ``pm.sample(chains=4, draws=1000, tune=1000)`` and otherwise default settings,
+  followed by ``az.summary`` of theta. PyMC 5.28's default ``cores`` is half of the CPU count
+  (``pymc.sampling.parallel._cpu_count`` assumes hyper-threads), so on 2 cores the four
+  chains run one after another in one process ("Sequential sampling" in the log);
 - ``nutpie``: the same model and call with ``nuts_sampler="nutpie"``.
 
 A child over the limit (default 20 minutes) is killed and reported as "did not finish"; larger
@@ -39,12 +41,14 @@ import json
 import os
 import shutil
 import statistics
+import subprocess
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import psutil
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _proc import run_measured  # noqa: E402
@@ -146,15 +150,30 @@ def workbench_command() -> str:
     return str(local) if local.exists() else (shutil.which("workbench") or "workbench")
 
 
+def code_version() -> str:
+    """HEAD of the checkout, plus "+changes" if workbench/ or models/ differ from it."""
+    repo = Path(__file__).resolve().parent.parent
+    git = ["git", "-C", str(repo)]
+    try:
+        head = subprocess.run([*git, "rev-parse", "--short", "HEAD"], capture_output=True)
+        dirty = subprocess.run(
+            [*git, "status", "--porcelain", "--", "workbench", "models"], capture_output=True
+        )
+    except OSError:
+        return "unknown"
+    return head.stdout.decode().strip() + ("+changes" if dirty.stdout.strip() else "")
+
+
 def measure(side: str, groups: int, rep: int, args: argparse.Namespace) -> dict:
     workdir = Path(args.workdir)
     data = data_file(workdir, groups)
-    tag = f"{side}-{groups}-r{rep}"
+    stamp = time.strftime("%Y%m%d-%H%M%S")  # one folder per run: earlier runs stay comparable
+    tag = f"{side}-{groups}-r{rep}-{stamp}"
     record: dict = {"side": side, "groups": groups, "repeat": rep, "time": time.time()}
+    record["code"] = code_version()  # the workbench side changes as the project moves on
+    record["load_before"] = os.getloadavg()[0]  # other jobs on the same cores
     if side == "workbench":
-        out_dir = workdir / f"run-{groups}-r{rep}"
-        if out_dir.exists():
-            shutil.rmtree(out_dir)
+        out_dir = workdir / f"run-{groups}-r{rep}-{stamp}"
         cmd = [workbench_command(), "fit", str(data), "--group", "group", "--successes"]
         cmd += ["successes", "--trials", "trials", "--target", "0.15", "--report"]
         cmd += ["--out", str(out_dir), "--seed", "1"]
@@ -164,7 +183,9 @@ def measure(side: str, groups: int, rep: int, args: argparse.Namespace) -> dict:
         cmd = [sys.executable, __file__, "--child", side, str(data), str(artefact)]
         record["artefact"] = str(artefact)
     record["command"] = cmd
-    got = run_measured(cmd, limit=args.limit, log_path=str(workdir / tag))
+    got = run_measured(
+        cmd, limit=args.limit, memory_limit_mb=args.memory_limit, log_path=str(workdir / tag)
+    )
     record.update(got.as_record())
     for line in got.stdout.splitlines():
         if line.startswith("RESULT "):
@@ -173,16 +194,31 @@ def measure(side: str, groups: int, rep: int, args: argparse.Namespace) -> dict:
         run_json = Path(record["artefact"]).with_name("run.json")
         if run_json.exists():
             run = json.loads(run_json.read_text())
-            record["workbench"] = {k: run.get(k) for k in ("engine", "verdict", "final")}
+            keys = ("engine", "verdict", "final", "fit_seconds")
+            record["workbench"] = {k: run.get(k) for k in keys}
     return record
 
 
+def killed_text(record: dict) -> str:
+    if record.get("killed_for") == "memory":
+        return f"stopped at the {record['memory_limit_mb']:,.0f} MB memory guard"
+    limit = record["limit_s"]
+    return (
+        f"did not finish in {limit / 60:.0f} min"
+        if limit >= 120
+        else f"did not finish in {limit:.0f} s"
+    )
+
+
 def describe(record: dict) -> str:
-    head = f"[{record['side']} G={record['groups']:,} rep {record['repeat']}]"
+    code = f" at {record['code']}" if record.get("code") else ""
+    if record.get("load_before") is not None:
+        code += f", load {record['load_before']:.1f}"
+    head = f"[{record['side']} G={record['groups']:,} rep {record['repeat']}{code}]"
     if record.get("skipped"):
         return f"{head} not run: {record['skipped']}"
     if not record["finished"]:
-        return f"{head} did not finish in {record['limit_s'] / 60:.0f} min (killed)"
+        return f"{head} {killed_text(record)} (killed)"
     text = (
         f"{head} exit {record['returncode']}, wall {record['wall_s']:.1f} s, peak memory"
         f" {record['tree_peak_mb']:.0f} MB (process tree, sampled), largest process"
@@ -191,6 +227,8 @@ def describe(record: dict) -> str:
     if record.get("workbench"):
         wb = record["workbench"]
         text += f"\n    engine {wb['engine']}, verdict {wb['verdict']}, final {wb['final']}"
+        if wb.get("fit_seconds") is not None:
+            text += f", fit_seconds in run.json {wb['fit_seconds']:.1f} s"
     child = record.get("child")
     if child:
         ph = child["phases"]
@@ -243,12 +281,19 @@ def summarise(records: list[dict], side: str, groups: int) -> dict | None:
         return None
     done = [r for r in mine if not r.get("skipped") and r["finished"] and r["returncode"] in (0, 3)]
     if not done:
-        return {"status": "skipped" if all(r.get("skipped") for r in mine) else "dnf", "runs": mine}
+        if all(r.get("skipped") for r in mine):
+            status = "skipped"
+        elif any(not r.get("skipped") and not r["finished"] for r in mine):
+            status = "dnf"
+        else:
+            status = "failed"
+        return {"status": status, "runs": mine}
     return {
         "status": "ok",
         "wall": statistics.median(r["wall_s"] for r in done),
         "peak": statistics.median(r["tree_peak_mb"] for r in done),
         "n": len(done),
+        "not_ready": any(r["returncode"] == 3 for r in done),
         "artefact": done[0]["artefact"],
         "runs": mine,
     }
@@ -258,12 +303,15 @@ def cell(s: dict | None) -> str:
     if s is None:
         return "not run"
     if s["status"] == "skipped":
-        return "not run (smaller size did not finish)"
+        return "not run (a smaller size did not finish or failed)"
+    if s["status"] == "failed":
+        codes = sorted({str(r["returncode"]) for r in s["runs"] if not r.get("skipped")})
+        return f"failed (exit {', '.join(codes)})"
     if s["status"] == "dnf":
-        limit = max(r.get("limit_s", 0) for r in s["runs"])
-        return f"did not finish in {limit / 60:.0f} min"
+        return next(killed_text(r) for r in s["runs"] if not r.get("skipped"))
     median = f" (median of {s['n']})" if s["n"] > 1 else ""
-    return f"{s['wall']:.1f} s{median}"
+    ready = " (exit 3: not-ready)" if s["not_ready"] else ""
+    return f"{s['wall']:.1f} s{median}{ready}"
 
 
 def table(records: list[dict], workdir: Path) -> str:
@@ -284,8 +332,14 @@ def table(records: list[dict], workdir: Path) -> str:
                 ratios.append(f"{label} {s['wall'] / wb['wall']:.1f}x")
                 a = agreement(wb["artefact"], s["artefact"], workdir / f"counts-{g}.csv")
                 if a:
-                    agree.append(f"{label}: {100 * a['within4']:.1f}%, {a['max_abs_z']:.1f}")
-            elif wb and wb["status"] == "ok" and s and s["status"] == "dnf":
+                    agree.append(f"{label}: {100 * a['within4']:.2f}%, {a['max_abs_z']:.1f}")
+            elif (
+                wb
+                and wb["status"] == "ok"
+                and s
+                and s["status"] == "dnf"
+                and s["runs"][0].get("killed_for", "time") == "time"
+            ):
                 limit = max(r.get("limit_s", 0) for r in s["runs"])
                 ratios.append(f"{label} > {limit / wb['wall']:.0f}x")
         peak = f"{wb['peak']:.0f} MB" if wb and wb["status"] == "ok" else "-"
@@ -329,6 +383,12 @@ def main() -> None:
     p.add_argument("--groups", type=int, nargs="+", default=[1000, 10000, 100000, 1000000])
     p.add_argument("--sides", nargs="+", choices=SIDES, default=list(SIDES))
     p.add_argument("--limit", type=float, default=1200.0, help="per-run wall limit, seconds")
+    p.add_argument(
+        "--memory-limit",
+        type=float,
+        default=0.7 * psutil.virtual_memory().total / 2**20,
+        help="stop a run whose process tree exceeds this many MB (default 70%% of RAM)",
+    )
     p.add_argument("--repeat", type=int, default=1, help="runs per case; the table quotes medians")
     p.add_argument("--workdir", default="/tmp/workbench-bench-scale")
     p.add_argument("--record", help="JSON-lines record (default: WORKDIR/records.jsonl)")
@@ -350,16 +410,17 @@ def main() -> None:
                 for rep in range(args.repeat):
                     if side in given_up:
                         rec = {"side": side, "groups": g, "repeat": rep, "finished": False}
-                        rec["skipped"] = f"{given_up[side]:,} groups did not finish"
+                        rec["skipped"] = f"{given_up[side]:,} groups did not finish or failed"
                     else:
                         rec = measure(side, g, rep, args)
                         rec["limit_s"] = args.limit
-                        if not rec["finished"]:
-                            given_up[side] = g
+                        rec["memory_limit_mb"] = args.memory_limit
+                        if not rec["finished"] or rec["returncode"] not in (0, 3):
+                            given_up[side] = g  # a larger size would not finish either
                     with record_path.open("a") as fh:
                         fh.write(json.dumps(rec) + "\n")
                     print(describe(rec), flush=True)
-                    if rec.get("skipped") or not rec["finished"]:
+                    if side in given_up:
                         break
     records = load_records(record_path)
     if args.table_only:
