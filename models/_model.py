@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 import time
 from typing import ClassVar
 
@@ -72,6 +73,28 @@ class _Estimator:
         self.random_seed = random_seed
 
     # -- settings -------------------------------------------------------------------------
+    @classmethod
+    def _param_names(cls) -> list[str]:
+        """The keyword settings of ``__init__``, through the class hierarchy (as scikit-learn)."""
+        names: list[str] = []
+        for klass in cls.__mro__:
+            init = klass.__dict__.get("__init__")
+            if init is None:
+                continue
+            for p in inspect.signature(init).parameters.values():
+                if p.kind is p.KEYWORD_ONLY and p.name not in names:
+                    names.append(p.name)
+        return names
+
+    def get_params(self) -> dict:
+        """The settings as given (one attribute per ``__init__`` keyword)."""
+        return {name: getattr(self, name) for name in self._param_names() if hasattr(self, name)}
+
+    def __repr__(self) -> str:
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        fitted = f", fitted to {self.data_.n_groups} groups" if hasattr(self, "data_") else ""
+        return f"{type(self).__name__}({shown}){fitted}"
+
     def _check_params(self) -> None:
         allowed = ("auto",) + self.engines
         if self.engine not in allowed:
@@ -640,15 +663,22 @@ MODELS: dict[str, type[_Estimator]] = {
 
 
 def make_model(name: str, **settings) -> _Estimator:
-    """An unfitted estimator by its model name; settings it does not take are dropped."""
+    """An unfitted estimator by its model name.
+
+    Raises
+    ------
+    ParameterError
+        ``name`` is not a model, or a setting is not one the model takes (the error lists
+        the ones it does).
+    """
     if name not in MODELS:
         quoted = ", ".join(repr(m) for m in MODELS)
         raise ParameterError(f"model={name!r} is not one of {quoted}.")
     cls = MODELS[name]
-    import inspect
-
-    accepted = set()
-    for klass in cls.__mro__:
-        if "__init__" in vars(klass):
-            accepted |= set(inspect.signature(klass.__init__).parameters)
-    return cls(**{k: v for k, v in settings.items() if k in accepted and v is not None})
+    accepted = cls._param_names()
+    unknown = [k for k in settings if k not in accepted]
+    if unknown:
+        raise ParameterError(
+            f"model {name!r} takes no setting {unknown[0]!r}; it takes: {', '.join(accepted)}."
+        )
+    return cls(**{k: v for k, v in settings.items() if v is not None})
