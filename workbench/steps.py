@@ -456,3 +456,228 @@ def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 
                                                         "engine", "replicates")}})
     staging.unlink(missing_ok=True)
     return open_run(path), result
+
+
+# -- audit: prior sensitivity and simulation-based calibration ---------------------------------
+
+SENSITIVITY_NOTE = "prior sensitivity:"
+
+
+def _audit_settings(folder: RunFolder, what: str):
+    """The run's recorded settings, checked; refuses runs whose counts alone cannot refit."""
+    from .models import ParameterError
+    from .options import FitSettings
+
+    recorded = folder.contents.settings
+    settings = FitSettings.from_options(**{k: v for k, v in recorded.items() if k in FIT_OPTIONS})
+    if settings["covariates"] or settings["parent"] is not None:
+        raise ParameterError(
+            f"{what} refits from the run's counts alone; this run uses covariates or parents,"
+            " which it does not handle yet: audit a run without them."
+        )
+    seed = folder.record.get("random_seed")
+    return settings.replace(seed=seed) if settings["seed"] is None and seed is not None \
+        else settings
+
+
+def _notes_with(record: dict, note: str | None) -> list[str]:
+    kept = [n for n in record.get("notes", []) if not str(n).startswith(SENSITIVITY_NOTE)]
+    return kept + ([note] if note else [])
+
+
+def sensitivity_folder(path: str | Path, *, progress=None):
+    """Refit a run under the documented alternative priors; write sensitivity.csv/.json.
+
+    Every fit (the baseline, the run's own prior, too) uses the exact engine where the model
+    has one. Returns ``(RunFolder, table, summary)``; a sensitive verdict adds a note to
+    run.json's "notes".
+    """
+    from .analysis import sensitivity
+    from .models import MODELS, make_model
+    from .pipeline import model_settings
+
+    folder = consistent(open_run(path))
+    settings = _audit_settings(folder, "sensitivity")
+    model = settings["model"]
+    engine = "exact" if "exact" in MODELS[model].engines else settings["engine"]
+    counts = counts_of(folder.idata)
+    level, target = settings["level"], settings["target"]
+    top, better, fdr = int(settings["top"]), settings["better"], settings["fdr"]
+    variants = sensitivity.prior_variants(settings)
+
+    def summarised(s):
+        est = make_model(model, **model_settings(s.replace(engine=engine), counts.n_groups))
+        est.fit(counts)
+        return sensitivity.conclusions(est, level=level, target=target, fdr=fdr, top=top,
+                                       better=better)
+
+    total = len(variants) + 1
+    started = time.perf_counter()
+    baseline = summarised(settings)
+    if progress:
+        progress(1, total, time.perf_counter() - started)
+    alternatives = {}
+    for i, v in enumerate(variants, start=2):
+        alternatives[v.name] = (v, summarised(settings.replace(**v.changes)))
+        if progress:
+            progress(i, total, time.perf_counter() - started)
+    table, doc = sensitivity.compare(baseline, alternatives, top=top, target=target)
+    doc = {**doc, "model": model, "engine": engine, "level": level,
+           "seconds": round(time.perf_counter() - started, 3)}
+    note = f"{SENSITIVITY_NOTE} {doc['sentence']}" if doc["verdict"] == "sensitive" else None
+    record = {"sensitivity": {k: doc[k] for k in ("verdict", "sentence", "flag_change_groups",
+                                                  "top_k_change_groups", "engine")},
+              "notes": _notes_with(folder.record, note)}
+    _update(folder, f"prior sensitivity under {len(variants)} alternative priors",
+            tables={"sensitivity": table}, documents={"sensitivity_summary": doc},
+            record=record)
+    return open_run(path), table, doc
+
+
+class CalibrationInterrupted(Exception):
+    """Raised when a calibration is stopped: finished replicates are kept for a rerun."""
+
+    def __init__(self, done: int, total: int, staging: Path) -> None:
+        super().__init__(f"{done} of {total} replicates kept in {staging}")
+        self.done, self.total, self.staging = done, total, staging
+
+
+def _read_staging(staging: Path, key: str) -> dict[int, dict]:
+    """Finished replicates of this plan; a torn last line (a killed write) is ignored."""
+    if not staging.exists():
+        return {}
+    done = {}
+    for line in staging.read_text(encoding="utf-8").splitlines(keepends=True):
+        if not line.endswith("\n"):
+            continue
+        try:
+            entry = json.loads(line)
+        except json.JSONDecodeError:
+            continue
+        if isinstance(entry, dict) and entry.get("plan") == key and "result" in entry:
+            done[int(entry["result"]["index"])] = entry["result"]
+    return done
+
+
+def _append_line(staging: Path, entry: dict) -> None:
+    """One JSON line, written by a single append: a reader sees it whole or not at all."""
+    data = (json.dumps(entry, default=_json_default) + "\n").encode("utf-8")
+    fd = os.open(staging, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, data)
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _json_default(value):
+    if hasattr(value, "item"):
+        return value.item()
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(type(value).__name__)
+
+
+def _workers(workers: int | None) -> int:
+    if workers is not None:
+        return max(1, int(workers))
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:
+        return max(1, os.cpu_count() or 1)
+
+
+def calibration_staging(folder: str | Path) -> Path:
+    """Where a calibration's finished replicates wait: beside the folder, named after it."""
+    folder = Path(folder)
+    return folder.parent / f".{folder.name}{runfolder.FILES['calibration_staging']}"
+
+
+def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 8,
+                     rank_draws: int = 99, engine: str | None = None, seed: int | None = None,
+                     target: float | None = None, workers: int | None = None, progress=None,
+                     fitter=None):
+    """Simulation-based calibration of a run's model and engine on its own trial counts.
+
+    Replicate i always uses the same seed (from ``seed``, else the run's), so a stopped
+    calibration resumes where it stopped: finished replicates are appended, one JSON line
+    each, to the folder's staging file, and a rerun with the same settings keeps them. When
+    all are done the tables land in the folder in one update and the staging file goes.
+    ``fitter(plan, counts, seed)`` replaces the model's fit (tests inject broken engines);
+    it must be picklable to run in worker processes. Returns ``(RunFolder, Calibration)``.
+    """
+    import concurrent.futures as futures
+    import math
+    import multiprocessing
+
+    from .analysis import calibration
+    from .models import MODELS
+    from .pipeline import model_settings
+
+    from .options import Number
+
+    simulations = Number(1, 100_000, whole=True)("simulations", simulations)
+    groups = Number(0, 10_000, whole=True)("tracked_groups", groups)
+    rank_draws = Number(9, 10_000, whole=True)("rank_draws", rank_draws)
+    folder = consistent(open_run(path))
+    settings = _audit_settings(folder, "calibrate")
+    if engine is not None:
+        settings = settings.replace(engine=engine)
+    used = settings["engine"]
+    if used == "auto":
+        used = MODELS[settings["model"]].engines[0]
+    counts = counts_of(folder.idata)
+    estimator = model_settings(settings.replace(engine=used), counts.n_groups)
+    if used == "exact" and settings["draws"] is None:
+        estimator["draws"] = max(1, math.ceil(rank_draws / int(settings["chains"])))
+    base_seed = seed if seed is not None else int(folder.record.get("random_seed") or 0)
+    target = settings["target"] if target is None else FIT_OPTIONS["target"].validate(target)
+    plan = calibration.make_plan(settings["model"], estimator, counts.names, counts.trials,
+                                 groups=groups, draws=rank_draws, seed=base_seed,
+                                 target=target, fdr=settings["fdr"])
+    staging = calibration_staging(folder.path)
+    done = _read_staging(staging, plan.key())
+    if not done and staging.exists():
+        staging.unlink()  # replicates of other settings: start afresh
+    todo = [i for i in range(simulations) if i not in done]
+    done = {i: r for i, r in done.items() if i < simulations}
+    started = time.perf_counter()
+
+    def finished(result: dict) -> None:
+        _append_line(staging, {"plan": plan.key(), "result": result})
+        done[int(result["index"])] = result
+        if progress:
+            progress(len(done), simulations, time.perf_counter() - started)
+
+    if progress and done:
+        progress(len(done), simulations, 0.0)
+    n_workers = min(_workers(workers), max(1, len(todo)))
+    try:
+        if n_workers <= 1:
+            for i in todo:
+                finished(calibration.run_replicate(plan, i, fitter))
+        else:
+            method = "fork" if used == "exact" else "spawn"
+            context = multiprocessing.get_context(method)
+            with futures.ProcessPoolExecutor(n_workers, mp_context=context) as pool:
+                pending = [pool.submit(calibration.run_replicate, plan, i, fitter) for i in todo]
+                try:
+                    for f in futures.as_completed(pending):
+                        finished(f.result())
+                except BaseException:
+                    for f in pending:
+                        f.cancel()
+                    raise
+    except KeyboardInterrupt:
+        raise CalibrationInterrupted(len(done), simulations, staging) from None
+    result = calibration.summarise(plan, list(done.values()), engine=used)
+    doc = {**result.summary, "wall_seconds": round(time.perf_counter() - started, 3),
+           "workers": n_workers}
+    result.summary = doc
+    _update(folder, f"simulation-based calibration, {simulations} replicates",
+            tables={"calibration": result.ranks, "calibration_replicates": result.replicates},
+            documents={"calibration_summary": doc},
+            record={"calibration": {k: doc[k] for k in ("verdict", "sentence", "model",
+                                                        "engine", "replicates")}})
+    staging.unlink(missing_ok=True)
+    return open_run(path), result

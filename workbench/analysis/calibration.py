@@ -146,14 +146,15 @@ def posterior_cdf_at(fitted, x: np.ndarray, theta: np.ndarray) -> np.ndarray:
     so one evaluation gives the coverage of every level.
     """
     exact = getattr(fitted, "exact_", None)
-    if exact is not None and all(hasattr(exact, k) for k in ("a", "b", "weights", "index")):
-        y = np.asarray(exact.y)[exact.index]
-        n = np.asarray(exact.n)[exact.index]
-        out = np.empty(len(x))
-        w = np.asarray(exact.weights)
-        for j in range(len(x)):
-            out[j] = special.betainc(exact.a + y[j], exact.b + n[j] - y[j], x[j]) @ w
-        return np.clip(out, 0.0, 1.0)
+    parts = [getattr(exact, k, None) for k in ("a", "b", "weights", "y", "n", "index")]
+    if exact is not None and all(p is not None for p in parts):
+        a, b, w, y, n, index = (np.asarray(p) for p in parts)
+        if a.shape == b.shape == w.shape and len(index) == len(x):
+            y, n = y[index], n[index]
+            out = np.empty(len(x))
+            for j in range(len(x)):
+                out[j] = special.betainc(a + y[j], b + n[j] - y[j], x[j]) @ (w / w.sum())
+            return np.clip(out, 0.0, 1.0)
     return (theta < x[None, :]).mean(axis=0)
 
 

@@ -246,6 +246,114 @@ def cmd_report(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _progress_printer(what: str, quiet: bool):
+    """A one-line progress meter on a terminal's stderr; nothing when quiet or redirected."""
+    if quiet or not sys.stderr.isatty():
+        return None
+
+    def show(done: int, total: int, seconds: float) -> None:
+        print("\r" + text.format_progress(what, done, total, seconds), end="", file=sys.stderr,
+              flush=True)
+        if done >= total:
+            print(file=sys.stderr)
+
+    return show
+
+
+def cmd_sensitivity(args: argparse.Namespace) -> int:
+    from .. import steps
+
+    folder, table, doc = steps.sensitivity_folder(
+        args.folder, progress=_progress_printer("sensitivity: fits", args.quiet))
+    _emit(text.format_sensitivity(doc),
+          f"wrote {path_of(args.folder, 'sensitivity')} and"
+          f" {path_of(args.folder, 'sensitivity_summary')}"
+          + ("" if folder.final else " (NOT FINAL: the run's diagnostics failed)"))
+    return EXIT_OK if folder.final else EXIT_NOT_READY
+
+
+#: fit options calibrate takes for a run folder (the rest are the run's own)
+CALIBRATE_FOLDER_NAMES = ("engine", "seed", "target")
+
+
+def cmd_calibrate(args: argparse.Namespace) -> int:
+    from .. import steps
+    from ..io.runfolder import is_run_folder
+
+    given = _given(args, FIT_NAMES)
+    source = Path(args.source)
+    if is_run_folder(source):
+        extra = [n for n in given if n not in CALIBRATE_FOLDER_NAMES]
+        if extra:
+            raise UsageError(
+                f"{FIT_OPTIONS[extra[0]].flag} goes with a data file; a run folder keeps its own"
+                f" settings (with a folder give only {', '.join('--' + n for n in CALIBRATE_FOLDER_NAMES)})")
+        folder_path = source
+    else:
+        fit_options = {k: v for k, v in given.items()}
+        fit_options.setdefault("out", f"run-{source.stem}")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            run = api.fit(source, **fit_options)
+        _emit(f"fitted {source} -> {run.path}/ ({run.diagnostics.verdict})")
+        folder_path = run.path
+        given = {}
+    try:
+        folder, result = steps.calibrate_folder(
+            folder_path, simulations=args.simulations, groups=args.tracked_groups,
+            rank_draws=args.rank_draws, engine=given.get("engine"), seed=given.get("seed"),
+            target=given.get("target"), workers=args.workers,
+            progress=_progress_printer("calibrate: replicates", args.quiet))
+    except steps.CalibrationInterrupted as stop:
+        print(f"\ninterrupted: {stop.done} of {stop.total} replicates kept in {stop.staging};"
+              " run the same command again to resume.", file=sys.stderr)
+        return 130
+    _emit(text.format_calibration(result.summary),
+          f"wrote {path_of(folder_path, 'calibration')},"
+          f" {path_of(folder_path, 'calibration_replicates')} and"
+          f" {path_of(folder_path, 'calibration_summary')}")
+    return EXIT_OK
+
+
+def _add_audit_parsers(sub) -> None:
+    s = sub.add_parser(
+        "sensitivity", help="refit a run folder under other reasonable priors and say what moves",
+        description="Refit a run folder under a documented set of alternative hyperpriors"
+                    " (weaker and stronger pooling, a different population-mean prior; exact"
+                    " engine where the model has one) and report per group how far the"
+                    " estimate, its interval, its rank interval and its target flag move;"
+                    " names the groups whose flag or best-k membership changes. Writes"
+                    f" {FILES['sensitivity']} and {FILES['sensitivity_summary']}.")
+    _folder_argument(s)
+    s.add_argument("--quiet", action="store_true", help="no progress line on the terminal")
+    s.set_defaults(func=cmd_sensitivity)
+
+    c = sub.add_parser(
+        "calibrate", help="simulation-based calibration of the model and engine on your trials",
+        description="Simulation-based calibration (Talts et al. 2018) with the data's own trial"
+                    " counts: draw truths from the prior, simulate successes, fit each with the"
+                    " run's model and engine, and test the ranks of the truths for uniformity"
+                    " and the coverage of 50/80/95% intervals and the false-flag share against"
+                    " their nominal values. Runs in parallel; stop it with Ctrl-C and run the"
+                    " same command again to resume. Give a run folder, or a data file (fitted"
+                    f" first, as 'workbench fit' does). Writes {FILES['calibration']},"
+                    f" {FILES['calibration_replicates']} and {FILES['calibration_summary']}.")
+    c.add_argument("source", help="a run folder, or a CSV, TSV or Parquet file to fit first")
+    g = c.add_argument_group("calibration")
+    g.add_argument("--simulations", default=100, metavar="N",
+                   help="simulated data sets, each fitted once (default: 100)")
+    g.add_argument("--tracked-groups", default=8, metavar="N",
+                   help="groups whose rate ranks are tested, spread over the trial counts"
+                        " (default: 8)")
+    g.add_argument("--rank-draws", default=99, metavar="L",
+                   help="posterior draws each truth is ranked among (default: 99)")
+    g.add_argument("--workers", default=None, type=int, metavar="N",
+                   help="worker processes (default: one per core)")
+    g.add_argument("--quiet", action="store_true", help="no progress line on the terminal")
+    _add_all(c, FIT_NAMES)
+    c.set_defaults(func=cmd_calibrate)
+
+
 # -- the parser --------------------------------------------------------------------------------
 
 
@@ -344,6 +452,7 @@ def build_parser() -> argparse.ArgumentParser:
                     " when the run's convergence verdict is not-ready.")
     _folder_argument(rp)
     rp.set_defaults(func=cmd_report)
+    _add_audit_parsers(sub)
     return parser
 
 

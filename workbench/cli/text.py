@@ -336,3 +336,53 @@ def format_calibration(doc: dict) -> str:
     else:
         lines.append(f"  target flags: {f}")
     return "\n".join(lines)
+
+
+def format_progress(what: str, done: int, total: int, seconds: float) -> str:
+    """One progress line: done of total, time so far and an estimate of the rest."""
+    left = seconds / done * (total - done) if done else float("nan")
+    rest = f", about {left:.0f} s left" if done and done < total else ""
+    return f"{what} {done}/{total} ({seconds:.0f} s{rest})"
+
+
+def format_sensitivity(doc: dict) -> str:
+    """Prior sensitivity: the verdict, then each alternative in one line."""
+    lines = [f"prior sensitivity: {doc['sentence']}",
+             f"  {'alternative':<29}{'max move':>9}  {'flags':>5}  {'best-' + str(doc['top_k']):>6}"
+             "  prior"]
+    for v in doc["alternatives"]:
+        lines.append(
+            f"  {v['alternative']:<29}{v['max_mean_shift_sd']:>6.2f} sd  {len(v['flag_changes']):>5}"
+            f"  {len(v['top_k_changes']):>6}  {v['prior']}")
+    if doc.get("target") is None:
+        lines.append("  (no target: flags not compared; give one with 'workbench rank DIR"
+                     " --target P')")
+    lines.append(f"  rule: {doc['rule']}")
+    return "\n".join(lines)
+
+
+def format_calibration(doc: dict) -> str:
+    """Simulation-based calibration: verdict, ranks, coverage, false flags."""
+    lines = [
+        f"calibration: {doc['sentence']}",
+        f"  {doc['model']}, engine {doc['engine']}, {doc['replicates']} simulated data sets on"
+        f" the data's {doc['groups']} trial counts, ranks among {doc['draws']} draws",
+    ]
+    for r in doc["ranks"]:
+        mark = "" if r["uniform"] is not False else "  NOT UNIFORM"
+        lines.append(f"  ranks {r['quantity'][:30]:<30} chi-square {r['chi_square']:7.2f}"
+                     f" ({r['df']} df), p {r['p_value']:.3f}{mark}")
+    for c in doc["coverage"]:
+        mark = "" if c["within"] else "  OUTSIDE TOLERANCE"
+        lines.append(f"  {c['level']:.0%} intervals cover {c['realised']:.1%} of true rates"
+                     f" (tolerance ±{c['tolerance']:.1%}){mark}")
+    f = doc["false_flags"]
+    if isinstance(f, dict):
+        mark = "" if f["within"] else "  TOO MANY"
+        lines.append(
+            f"  target {f['target']:g}: false-flag share {f['realised_false_share']:.1%} against"
+            f" the posterior's expected {f['expected_false_share']:.1%} (level"
+            f" {f['fdr_level']:g}; {f['flagged_per_replicate']:.1f} flags per data set){mark}")
+    else:
+        lines.append(f"  target flags: {f}")
+    return "\n".join(lines)

@@ -96,6 +96,13 @@ def figure_makers(folder: FolderContents) -> dict[str, Maker]:
     }
     makers.update(_ranking_makers(folder))
     makers.update(_check_makers(folder))
+    if "calibration" in t and "calibration_replicates" in t:
+        from ..figures.audit import plot_calibration
+
+        makers["calibration"] = (
+            lambda: plot_calibration(t["calibration"], t["calibration_replicates"]),
+            "Simulation-based calibration: rank histograms and interval coverage.",
+        )
     if has_population_draws(folder):
         draws = t["population_draws"]
         makers["population"] = (

@@ -35,6 +35,7 @@ from markupsafe import Markup
 from ..io import atomic
 from ..io.runfolder import FILES, FolderContents, path_of, read_comparison, read_folder
 from ..models import versions
+from . import audit as _audit
 from . import checks as _checks
 from . import page as _page
 from . import ranking as _ranking
@@ -45,7 +46,8 @@ from .reproduce import reproduce
 from .sections import CAUTION_SHORT, CAUTIONS, TABLE_ROWS
 
 _ENV = Environment(autoescape=True, undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
-_TEMPLATE = _ENV.from_string(_page.TEMPLATE)
+_TEMPLATE = _ENV.from_string(_page.TEMPLATE.replace(
+    '\n<section id="cautions">', _audit.SECTION + '\n<section id="cautions">', 1))
 _SCRIPT_HASH = base64.b64encode(hashlib.sha256(_page.SCRIPT.encode()).digest()).decode()
 CSP = (
     "default-src 'none'; img-src data:; style-src 'unsafe-inline';"
@@ -60,6 +62,7 @@ SECTIONS = (
     ("estimates", "Estimates"),
     ("ranks", "Ranks"),
     ("predictions", "Predictions"),
+    ("audit", "Audit"),
     ("cautions", "Cautions"),
     ("reproduce", "Reproduce"),
 )
@@ -156,6 +159,7 @@ def render(
         "created": time.strftime("%Y-%m-%d %H:%M:%S %z"),
         **_model_parts(folder),
         **_result_parts(folder, comparison, table_rows),
+        "audit": _audit.parts(folder),
     }
     return _TEMPLATE.render(**context)
 
