@@ -107,7 +107,9 @@ def compute(inp: GroupDraws, opts: RankOptions) -> Ranking:
         )
         tables["trials_needed"] = needed
     if inp.n_groups >= 2:
-        index, chosen = pairwise_groups(inp.names, inp.posterior_mean, opts)
+        index, chosen = pairwise_groups(
+            inp.names, inp.posterior_mean, compare_groups=opts.compare_groups,
+            better=opts.better, top=opts.pairwise_top)
         tables["pairwise"] = pairwise_table(inp.theta, inp.names, index, opts.better)
     else:
         chosen = "none: fewer than two groups"

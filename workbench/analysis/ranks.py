@@ -18,18 +18,15 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
 from ..models.exceptions import DataError
-from ..options import BETTER
+from ..options import BETTER, label
 from .draws import CHUNK_CELLS
 from .draws import chunks as _chunks
 
-if TYPE_CHECKING:
-    from .ranking import RankOptions
 #: largest number of histogram cells held while refining rank quantiles
 HISTOGRAM_CELLS = 16_000_000
 
@@ -252,24 +249,20 @@ def pairwise_table(
 
 
 def pairwise_groups(
-    names: np.ndarray, posterior_mean: np.ndarray, opts: RankOptions
+    names: np.ndarray, posterior_mean: np.ndarray, *, compare_groups, better: str, top: int
 ) -> tuple[np.ndarray, str]:
-    """Indices of the groups to compare: the named ones, or the best ``pairwise_top`` by mean."""
+    """Indices of the groups to compare: the named ones, or the best ``top`` by mean."""
     names = np.asarray(names).astype(str)
-    if opts.compare_groups:
+    if compare_groups:
         where = {n: i for i, n in enumerate(names)}
-        missing = [c for c in opts.compare_groups if c not in where]
+        missing = [c for c in compare_groups if c not in where]
         if missing:
             known = ", ".join(repr(str(n)) for n in names[:5])
             raise DataError(
-                f"compare: group {missing[0]!r} is not in the run"
+                f"{label('compare_groups')} group {missing[0]!r} is not in the run"
                 + (f" (and {len(missing) - 1} more)" if len(missing) > 1 else "")
                 + f"; its groups include {known}. Names are case-sensitive."
             )
-        return np.array([where[c] for c in opts.compare_groups]), "named"
-    order = np.argsort(
-        -posterior_mean if opts.better == "higher" else posterior_mean, kind="stable"
-    )
-    return order[
-        : min(opts.pairwise_top, len(names))
-    ], f"best {opts.pairwise_top} by posterior mean"
+        return np.array([where[c] for c in compare_groups]), "named"
+    order = np.argsort(-posterior_mean if better == "higher" else posterior_mean, kind="stable")
+    return order[: min(top, len(names))], f"best {top} by posterior mean"

@@ -15,6 +15,7 @@ import shutil
 import signal
 import tempfile
 import threading
+import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
@@ -235,3 +236,74 @@ def _swap(out: Path, staging: Path) -> None:
     finally:
         for old in olds:
             shutil.rmtree(old, ignore_errors=True)
+
+
+def _copy_linked(src: Path, dst: Path) -> None:
+    """Copy a folder's files into ``dst``: hard links where the file system allows.
+
+    Safe because no file of a run folder is ever changed in place: every write is a new
+    file renamed over the old name, which breaks the link.
+    """
+    for item in src.iterdir():
+        if item.name.startswith("."):
+            continue
+        target = dst / item.name
+        if item.is_dir():
+            shutil.copytree(item, target, copy_function=_link_or_copy)
+        else:
+            _link_or_copy(item, target)
+
+
+def _link_or_copy(src, dst) -> None:
+    try:
+        os.link(src, dst)
+    except OSError:
+        shutil.copy2(src, dst)
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OSError):
+        return True
+    return True
+
+
+def clean_staging(parent: str | Path, name: str, *, age: float = 60.0) -> list[Path]:
+    """Remove staging folders a killed run left beside ``parent/name``.
+
+    A staging folder is ``.NAME.PID.XXXX.part`` (or ``.old``): it is removed when its
+    process is gone, or, without a readable PID, when it is older than ``age`` seconds.
+    A live writer's staging folder is never touched.
+    """
+    parent = Path(parent)
+    removed = []
+    if not parent.is_dir():
+        return removed
+    now = time.time()
+    for p in parent.glob(f".{glob_escape(name)}.*"):
+        if p.suffix not in (".part", ".old") or not p.is_dir() or p.is_symlink():
+            continue
+        rest = p.name[len(name) + 2:].split(".")
+        try:
+            pid = int(rest[0]) if len(rest) >= 3 else None
+        except ValueError:
+            pid = None
+        try:
+            stale = (not _pid_alive(pid)) if pid is not None and pid != os.getpid() else (
+                pid is None and now - p.stat().st_mtime > age)
+            if stale:
+                shutil.rmtree(p, ignore_errors=True)
+                removed.append(p)
+        except OSError:
+            continue
+    return removed
+
+
+def glob_escape(text: str) -> str:
+    """``text`` with glob's special characters taken literally."""
+    import glob
+
+    return glob.escape(text)

@@ -17,9 +17,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .runfolder import NEW_GROUP_LABEL
 from ..models import DataError, GroupCounts
 from ..models.exceptions import join_problems
+from .runfolder import NEW_GROUP_LABEL
 
 TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
 FALSE_WORDS = {"0", "false", "f", "no", "n", "failure", "0.0"}
@@ -517,9 +517,9 @@ def load_groups(
         per_group = pairs.groupby("group", sort=False)["parent"].nunique()
         if (per_group > 1).any():
             g = per_group.index[(per_group > 1).to_numpy()][0]
-            rows = np.flatnonzero(labels.to_numpy() == g)
-            first = plabels.iloc[rows[0]]
-            i = int(next(r for r in rows if plabels.iloc[r] != first))
+            members = np.flatnonzero(labels.to_numpy() == g)
+            first = plabels.iloc[members[0]]
+            i = int(next(r for r in members if plabels.iloc[r] != first))
             raise DataError(
                 f"{rows.label(i)} (group {g!r}): column {parent!r} is {plabels.iloc[i]!r} but an"
                 f" earlier row of the group says {first!r}; a group has one parent."
