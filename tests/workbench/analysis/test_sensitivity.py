@@ -64,7 +64,7 @@ def test_mean_shift_matches_beta_conjugacy_for_no_pooling():
     assert doc["verdict"] == "robust", doc["sentence"]
 
 
-@pytest.mark.slow  # seven exact fits: about a minute on two shared cores
+@pytest.mark.slow  # seven exact fits: seconds idle, about a minute on busy shared cores
 def test_names_the_group_whose_flag_hinges_on_the_prior():
     # 11 invented groups near 0.20 with 20 trials each and one at 30/100: with little
     # information on how alike groups are, the pooling prior decides whether 30/100 clears a
@@ -84,7 +84,7 @@ def test_names_the_group_whose_flag_hinges_on_the_prior():
     assert row["mean_shift"].iloc[0] > 0
 
 
-@pytest.mark.slow  # seven exact fits of 40 large groups: about two minutes on two shared cores
+@pytest.mark.slow  # seven exact fits of 40 large groups: two minutes on busy shared cores
 def test_large_well_identified_table_is_robust():
     # 40 invented groups with 5,000 trials each, rates spread from 0.05 to 0.60 and none within
     # 0.03 of the target 0.3: the data, not the prior, decide every conclusion
