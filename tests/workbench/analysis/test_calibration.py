@@ -14,11 +14,11 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
+from workbench.models import GroupCounts
 
 from workbench import api, steps
 from workbench.analysis import calibration
 from workbench.io import runfolder
-from workbench.models import GroupCounts
 
 
 def _plan(trials, **kw):
@@ -125,7 +125,7 @@ def test_a_widened_posterior_is_caught(demo_folder):
     assert folder.record["calibration"]["verdict"] == "miscalibrated"
 
 
-@pytest.mark.slow  # 100 exact fits over two workers: 32 s on two idle cores, many minutes under load
+@pytest.mark.slow  # 100 exact fits, two workers: 32 s on idle cores, minutes under load
 def test_exact_engine_is_calibrated_on_the_demo_trials(demo_folder):
     folder, result = steps.calibrate_folder(demo_folder, simulations=100, workers=2)
     doc = result.summary

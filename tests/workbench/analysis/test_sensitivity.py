@@ -9,9 +9,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
+from workbench.models import GroupCounts, make_model
 
 from workbench.analysis import sensitivity
-from workbench.models import GroupCounts, make_model
 from workbench.options import FitSettings
 
 
