@@ -15,6 +15,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
+from . import progress
 from .analysis import verify as verification
 from .analysis.checks import check_posterior
 from .analysis.diagnostics import MISFIT, diagnose, first_remedy_settings, include_checks
@@ -299,12 +300,15 @@ def fit_run(source, settings: FitSettings) -> Run:
     """Load, fit, summarise, diagnose and compute every table: one run, not yet written."""
     if settings["out"] is not None:  # --out problems are known now, not after the fit
         check_replaceable(settings["out"])
-    loaded = load(source, settings)
+    with progress.step("reading data"):
+        loaded = load(source, settings)
     check_model_inputs(loaded, settings)
     check_size(settings, loaded.counts.n_groups)
     started = time.perf_counter()
-    estimator = fit_model(loaded, settings)
-    diagnostics = diagnose(estimator.idata_)
+    with progress.step(f"fitting {settings['model']} to {loaded.counts.n_groups:,} groups"):
+        estimator = fit_model(loaded, settings)
+    with progress.step("convergence diagnostics"):
+        diagnostics = diagnose(estimator.idata_)
     record_parts: dict = {}
     messages: list[str] = []
     if not diagnostics.ready and settings["retry"]:
@@ -338,9 +342,11 @@ def fit_run(source, settings: FitSettings) -> Run:
     if settings["verify"]:
         verify_run(run)
     if settings["checks"]:
-        add_checks(run)
+        with progress.step("posterior predictive checks"):
+            add_checks(run)
     include_checks(diagnostics, run.documents.get("checks"))
-    add_ranking(run)
+    with progress.step("ranks, flags and trials needed"):
+        add_ranking(run)
     if settings["predict_trials"] is not None:
         add_predictions(run)
     run.seconds = time.perf_counter() - started

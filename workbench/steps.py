@@ -13,6 +13,7 @@ import os
 import time
 from pathlib import Path
 
+from . import progress
 from .analysis.checks import check_posterior
 from .analysis.comparison import compare_posteriors
 from .analysis.draws import group_draws
@@ -81,7 +82,8 @@ def write_run(run: Run, out: str | Path, *, report: bool = False) -> Path:
     out = Path(out)
     runfolder.clean_staging(out.parent, out.name)
     then = (lambda staging: render_into(staging, final=out)) if report else None
-    runfolder.write_folder(out, parts_of(run), then=then)
+    with progress.step(f"writing {out}" + (" and its report" if report else "")):
+        runfolder.write_folder(out, parts_of(run), then=then)
     run.path = out
     return out
 

@@ -232,6 +232,17 @@ def _mcse_quantile(x: np.ndarray, prob: float, ordered: np.ndarray | None = None
 def summary(values, *, lower: float = 0.025, upper: float = 0.975) -> dict[str, np.ndarray]:
     """Every per-quantity figure the convergence table shows, for a (chain, draw, ...) array."""
     x = _as3d(values)
+    # blocks of quantities keep the FFT and sort buffers small (measured: one 10,000-group
+    # block took twice the wall time of the same CPU work in blocks)
+    parts = [_summary_block(x[i:i + BLOCK], lower, upper) for i in range(0, len(x), BLOCK)]
+    return {key: np.concatenate([p[key] for p in parts]) for key in parts[0]}
+
+
+#: quantities per block in :func:`summary`
+BLOCK = 256
+
+
+def _summary_block(x: np.ndarray, lower: float, upper: float) -> dict[str, np.ndarray]:
     ordered = np.sort(x.reshape(x.shape[0], -1), axis=1)
     z = _z_scale(_split(x))  # NaN rows are masked out by each figure
     return {

@@ -21,7 +21,7 @@ import threading
 import warnings
 from pathlib import Path
 
-from .. import api
+from .. import api, progress
 from ..analysis.settings import CheckSettings
 from ..io.runfolder import COMPARISON_FILES, FILES, path_of
 from ..models import ConvergenceWarning, ParameterError, WorkbenchError
@@ -233,7 +233,9 @@ def cmd_compare(args: argparse.Namespace) -> int:
                      f" {checks.get('verdict', '-')} (misfit: {misfit}), {run.seconds:.1f} s")
     _emit("\n".join(lines), text.format_comparison(comparison),
           f"wrote {out}/: {', '.join(runs)} run folders, {files}")
-    return EXIT_OK if all(r.ready for r in runs.values()) else EXIT_NOT_READY
+    # a model that misfits is the comparison's finding; only an unconverged fit is not final
+    unconverged = [r for r in runs.values() if r.verdict == "not-ready"]
+    return EXIT_NOT_READY if unconverged else EXIT_OK
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -379,6 +381,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    " tables.")
     p.add_argument("data", help="CSV, TSV or Parquet file: one row per group (or per trial)")
     _add_all(p, FIT_NAMES)
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress display on the terminal (it never shows in a pipe or log)")
     p.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("demo", help="fit the bundled invented demo data and write a run folder",
@@ -388,6 +392,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    " changes it), predictions for 100 future visitors per"
                                    " branch, and seed 1 (--seed changes it).")
     _add_all(d, DEMO_NAMES)
+    d.add_argument("--quiet", action="store_true",
+                   help="no progress display on the terminal (it never shows in a pipe or log)")
     d.set_defaults(func=cmd_demo)
 
     ranked = ", ".join(FILES[n] for n in ("ranks", "pairwise", "funnel", "funnel_curve"))
@@ -489,7 +495,9 @@ def _main(argv: list[str] | None = None) -> int:
                 args = parser.parse_args(argv)
             except SystemExit as exc:  # --help (0)
                 return int(exc.code or 0)
-            with invoked_as(command):
+            # --quiet is a terminal matter, not a setting of the run: never in run.json
+            shown = progress.Display(enabled=not getattr(args, "quiet", False))
+            with invoked_as(command), progress.showing(shown):
                 return args.func(args)
     except WorkbenchError as exc:
         message = str(exc).replace("\n", " ").rstrip(".")
