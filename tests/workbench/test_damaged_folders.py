@@ -22,7 +22,7 @@ from workbench.cli.main import main
 COMMANDS = {
     "rank": ["rank", "{f}", "--top", "2"],
     "predict": ["predict", "{f}", "--trials", "10"],
-    "check": ["check", "{f}", "--replicates", "50"],
+    "check": ["check", "{f}", "--replicates", "400"],
     "report": ["report", "{f}"],
 }
 FILES = ["posterior.nc", "run.json", "estimates.csv", "diagnostics.json", "checks.json",
@@ -37,7 +37,7 @@ def made(tmp_path_factory):
     trials = rng.integers(5, 60, 12)
     table = pd.DataFrame({"group": [f"g{i}" for i in range(12)],
                           "successes": rng.binomial(trials, 0.3), "trials": trials})
-    api.fit(table, model="no-pooling", seed=5, out=out, replicates=50)
+    api.fit(table, model="no-pooling", seed=5, out=out, replicates=400)
     return out
 
 

@@ -13,6 +13,8 @@ from ..models._stats import beta_from_moments, betabinom_logpmf
 #: P(above target) outside these bounds reads "settled"
 SETTLE_BOUNDS = (0.05, 0.95)
 CHUNK_CELLS = 2_000_000
+#: most (group, m) pairs of the every-m scan computed at once
+SCAN_PAIRS = 200_000
 
 if TYPE_CHECKING:
     from .draws import GroupDraws
@@ -78,6 +80,18 @@ def settle_chance(
     return np.clip(1.0 - unsettled, 0.0, 1.0)
 
 
+def _batches(items: np.ndarray, sizes: np.ndarray, most: int):
+    """Consecutive runs of ``items`` whose ``sizes`` add up to at most ``most`` (at least one)."""
+    start, total = 0, 0
+    for i, size in enumerate(sizes):
+        if i > start and total + size > most:
+            yield items[start:i]
+            start, total = i, 0
+        total += int(size)
+    if start < len(items):
+        yield items[start:]
+
+
 def _window_mass(a, b, m, first, length) -> np.ndarray:
     """Beta-binomial(m, a, b) mass of y = first .. first + length - 1, summed per row."""
     span = int(length.max())
@@ -102,9 +116,12 @@ def trials_needed_table(
     conjugate models; for the hierarchy this holds the population fixed while the group
     learns), future successes are Beta-binomial, and :func:`settle_chance` gives the exact
     probability that P(theta > target) ends outside (0.05, 0.95). The search doubles m from 1
-    to ``max_trials``, then bisects between the last miss and the first hit. The chance rises
-    with m apart from small saw-teeth caused by whole-number counts, so the answer is the
-    first m on the search path that reaches ``chance``.
+    to ``max_trials`` until the chance is first met. Whole-number counts make the chance
+    zig-zag with m (by a few hundredths), so a first crossing is not yet a promise; the
+    chance is then computed at *every* m from 1 to a horizon H (twice that first m plus 20,
+    doubled while the chance at H still falls short, at most ``max_trials``), and the m
+    reported is the smallest from which the chance stays at or above ``chance`` at every m
+    through H. ``prob_settled`` is the chance at that m.
     """
     names = inp.names.astype(str)
     a, b = beta_from_moments(*inp.moments())
@@ -117,12 +134,11 @@ def trials_needed_table(
     needed[settled] = 0
     prob[settled] = 1.0
     todo = np.flatnonzero(~settled)
-    last_miss = np.zeros(g, dtype=np.int64)
+    # 1. a first m that reaches the chance: doubling from 1 to max_trials
     grid = [int(x) for x in 2 ** np.arange(0, int(np.log2(max_trials)) + 1)]
     if grid[-1] != max_trials:
         grid.append(int(max_trials))
     first_hit = np.full(g, -1, dtype=np.int64)
-    hit_prob = np.full(g, np.nan)
     active = todo
     for m in grid:
         if not active.size:
@@ -130,27 +146,38 @@ def trials_needed_table(
         c = settle_chance(a[active], b[active], np.full(active.size, m), target)
         hit = c >= chance
         first_hit[active[hit]] = m
-        hit_prob[active[hit]] = c[hit]
-        last_miss[active[~hit]] = m
         prob[active[~hit]] = c[~hit]
         active = active[~hit]
+    # 2. every m from 1 to a horizon: the reported m is the smallest from which the chance
+    #    stays at or above ``chance`` through the horizon (2 x the first hit + 20, widened
+    #    until the chance at the horizon holds, capped by max_trials)
     found = todo[first_hit[todo] > 0]
-    lo = last_miss[found].copy()  # chance < target level here (0: not yet settled)
-    hi = first_hit[found].copy()
-    best = hit_prob[found].copy()
-    while found.size:
-        open_ = hi - lo > 1
-        if not open_.any():
-            break
-        idx = np.flatnonzero(open_)
-        mid = (lo[idx] + hi[idx]) // 2
-        c = settle_chance(a[found[idx]], b[found[idx]], mid, target)
-        ok = c >= chance
-        hi[idx[ok]] = mid[ok]
-        best[idx[ok]] = c[ok]
-        lo[idx[~ok]] = mid[~ok]
-    needed[found] = hi
-    prob[found] = best
+    horizon = np.minimum(int(max_trials), 2 * first_hit + 20)
+    pending = found
+    missing: list[int] = []
+    while pending.size:
+        widen = []
+        for batch in _batches(pending, horizon[pending], SCAN_PAIRS):
+            h = horizon[batch]
+            rows = np.repeat(np.arange(batch.size), h)
+            ms = np.arange(h.sum()) - np.repeat(np.cumsum(h) - h, h) + 1
+            c = settle_chance(a[batch][rows], b[batch][rows], ms, target)
+            ends = np.cumsum(h)
+            for i, j in enumerate(batch):
+                ci = c[ends[i] - h[i]: ends[i]]
+                below = np.flatnonzero(ci < chance)
+                if below.size and below[-1] == h[i] - 1:  # still short at the horizon
+                    if h[i] >= max_trials:
+                        missing.append(j)
+                    else:
+                        horizon[j] = min(int(max_trials), 2 * int(h[i]))
+                        widen.append(j)
+                    continue
+                start = int(below[-1]) + 1 if below.size else 0
+                needed[j] = start + 1
+                prob[j] = float(ci[start])
+        pending = np.asarray(widen, dtype=np.int64)
+    found = np.setdiff1d(found, np.asarray(missing, dtype=np.int64))
     status = np.where(
         settled,
         "already settled",
@@ -175,8 +202,13 @@ def trials_needed_table(
         "not_within_max_trials": int(g - settled.sum() - found.size),
         "method": (
             "preposterior: each group's posterior moment-matched to a Beta; future successes"
-            " Beta-binomial; settled outcomes found by bisection; m searched by doubling, then"
-            " bisection"
+            " Beta-binomial; settled outcomes found by bisection; m searched by doubling to a"
+            " first m reaching the chance, then the chance at every m up to a horizon"
+        ),
+        "definition": (
+            f"trials_needed is the smallest m from which the chance of settling stays at or"
+            f" above {chance:g} for every m up to a horizon of twice the first m reaching it"
+            f" plus 20 (widened while the chance there falls short, at most {int(max_trials)})"
         ),
     }
     return table, doc

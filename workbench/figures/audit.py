@@ -1,8 +1,8 @@
 """Audit figures: simulation-based calibration, drawn from the calibration tables.
 
-The rank histogram bins ranks already computed (calibration.csv: replicate, quantity, rank,
+The rank histogram bins ranks already computed (the calibration table: replicate, quantity, rank,
 draws); the coverage panel shows the realised shares per replicate already computed
-(calibration_replicates.csv: coverage_0.5, coverage_0.8, coverage_0.95). Nothing is estimated.
+(the calibration replicates table: coverage_0.5, coverage_0.8, coverage_0.95). Nothing is estimated.
 """
 
 from __future__ import annotations

@@ -488,6 +488,16 @@ def _finish_record(folder: Path, record: dict) -> dict:
     return record
 
 
+def refresh_record(folder: str | Path) -> dict:
+    """Bring run.json's file list and digests up to date with the files in ``folder``.
+
+    For a step that writes derived files (the report) straight into a folder it owns, such as
+    a staging folder; every other write goes through :func:`write_folder`/:func:`update_folder`.
+    """
+    folder = Path(folder)
+    return _finish_record(folder, _read_json(path_of(folder, "record")))
+
+
 def write_folder(out: str | Path, parts: FolderParts,
                  then: Callable[[Path], None] | None = None) -> Path:
     """Write a new run folder atomically: every file, then ``then(staging)`` (the report)."""

@@ -1,6 +1,6 @@
 """The report's audit section: prior sensitivity and simulation-based calibration.
 
-Both read the run folder's own files (sensitivity.json, calibration.json) and format them;
+Both read the run folder's own files (the sensitivity and calibration documents) and format them;
 nothing is computed. A folder without them shows "not computed for this run" and the command
 that writes them.
 """

@@ -33,7 +33,14 @@ from jinja2 import Environment, StrictUndefined
 from markupsafe import Markup
 
 from ..io import atomic
-from ..io.runfolder import FILES, FolderContents, path_of, read_comparison, read_folder
+from ..io.runfolder import (
+    FILES,
+    FolderContents,
+    path_of,
+    read_comparison,
+    read_folder,
+    refresh_record,
+)
 from ..models import versions
 from . import audit as _audit
 from . import checks as _checks
@@ -216,6 +223,7 @@ def render_into(
     )
     written = write_figures(path_of(folder, "figures"), images)
     atomic.write_text(path_of(folder, "report"), html)
+    refresh_record(folder)  # the record lists and digests the files just written
     return Report(
         path_of(final, "report"),
         [path_of(final, "figures") / p.name for p in written],

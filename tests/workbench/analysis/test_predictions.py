@@ -77,6 +77,8 @@ def test_same_seed_same_table(no_pooling):
 # -- command line, run folders from every model -------------------------------------------------
 
 MODELS = [("no-pooling", "exact"), ("complete-pooling", "exact"), ("beta-binomial", "exact")]
+#: the simulated groups differ, so one shared rate misfits them: its run is written, not final
+EXPECTED_EXIT = {"no-pooling": 0, "complete-pooling": 3, "beta-binomial": 0}
 
 
 @pytest.fixture(scope="module")
@@ -97,7 +99,7 @@ def _fit(data_csv, folder, model, engine, *extra):
             "--engine",
             engine,
             "--draws",
-            "150",
+            "200",
             "--chains",
             "2",
             "--seed",
@@ -112,8 +114,9 @@ def _fit(data_csv, folder, model, engine, *extra):
 @pytest.mark.parametrize("model, engine", MODELS)
 def test_cli_predict_every_model(data_csv, tmp_path, capsys, model, engine):
     folder = tmp_path / "run"
-    assert _fit(data_csv, folder, model, engine) == 0
-    assert cli.main(["predict", str(folder), "--trials", "50", "--level", "0.8"]) == 0
+    assert _fit(data_csv, folder, model, engine) == EXPECTED_EXIT[model]
+    code = cli.main(["predict", str(folder), "--trials", "50", "--level", "0.8"])
+    assert code == EXPECTED_EXIT[model]  # a step on a folder that is not final is not final
     out = capsys.readouterr().out
     assert "(new group)" in out and "predictions.csv" in out
     table = pd.read_csv(folder / "predictions.csv")

@@ -328,6 +328,8 @@ def test_bad_options_name_the_setting(kwargs, match):
 # -- through the command line, on run folders from every model ---------------------------------
 
 MODELS = [("no-pooling", "exact"), ("complete-pooling", "exact"), ("beta-binomial", "exact")]
+#: the simulated groups differ, so one shared rate misfits them: its run is written, not final
+EXPECTED_EXIT = {"no-pooling": 0, "complete-pooling": 3, "beta-binomial": 0}
 
 
 @pytest.fixture(scope="module")
@@ -347,7 +349,7 @@ def _fit_folder(data_csv, folder, model, engine, *extra):
         "--engine",
         engine,
         "--draws",
-        "150",
+        "200",
         "--chains",
         "2",
         "--seed",
@@ -364,7 +366,8 @@ def folders(data_csv, tmp_path_factory):
     out = {}
     for model, engine in MODELS:
         folder = tmp_path_factory.mktemp(model) / "run"
-        assert _fit_folder(data_csv, folder, model, engine, "--target", "0.2") == 0
+        code = _fit_folder(data_csv, folder, model, engine, "--target", "0.2")
+        assert code == EXPECTED_EXIT[model]
         out[model] = folder
     return out
 
@@ -409,7 +412,7 @@ def test_cli_rank_rewrites_folder(folders, model, capsys):
         ]
     )
     out = capsys.readouterr().out
-    assert code == 0
+    assert code == EXPECTED_EXIT[model]
     assert "rank intervals overlap" in out
     ranks = pd.read_csv(folder / "ranks.csv")
     assert ranks["prob_best_k"].sum() == pytest.approx(3)

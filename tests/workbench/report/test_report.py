@@ -155,6 +155,7 @@ def test_absent_tables_say_not_computed(run_folder, tmp_path):
         "trials_needed",
     ):
         path_of(bare, name).unlink(missing_ok=True)
+    runfolder.refresh_record(bare)  # a folder written without these steps
     record = json.loads(path_of(bare, "record").read_text())
     record.pop("ranking", None)
     path_of(bare, "record").write_text(json.dumps(record))
@@ -187,6 +188,7 @@ def test_not_ready_run_says_so_in_red_words(run_folder, tmp_path):
     record = json.loads(path_of(failed, "record").read_text())
     record.update(final=False, verdict="not-ready")
     path_of(failed, "record").write_text(json.dumps(record))
+    runfolder.refresh_record(failed)  # as if the run had been written that way
     assert report.render_into(failed).final is False  # written, but not final
     page = path_of(failed, "report").read_text(encoding="utf-8")
     banner = re.search(
