@@ -303,6 +303,9 @@ class Option:
 
 RATE = Number(0, 1, low_open=True, high_open=True)
 POSITIVE = Number(0, None, low_open=True)
+#: a Beta prior's parameters: positive (proper) and at most 1e6 (beyond it the prior alone
+#: fixes the rate to six digits, and numpy's Beta sampler fails near 1e308)
+PRIOR_SIZE = Number(0, 1e6, low_open=True)
 MODELS = ("beta-binomial", "no-pooling", "complete-pooling", "logit-normal", "nested")
 ENGINES = ("auto", "exact", "mcmc", "latent")
 BETTER = ("higher", "lower")
@@ -357,12 +360,12 @@ MODEL_OPTIONS = _options(
         "model",
     ),
     Option(
-        "beta_prior", (1.0, 1.0), Pair(POSITIVE),
+        "beta_prior", (1.0, 1.0), Pair(PRIOR_SIZE),
         "Beta(A, B) prior of each rate for no-pooling and complete-pooling (1 1 is uniform;"
         " 0.5 0.5 is the Jeffreys prior)", "model", ("A", "B"),
     ),
     Option(
-        "mu_prior", (1.0, 1.0), Pair(POSITIVE),
+        "mu_prior", (1.0, 1.0), Pair(PRIOR_SIZE),
         "beta-binomial: Beta(A, B) prior of the population mean rate", "model", ("A", "B"),
     ),
     Option(
