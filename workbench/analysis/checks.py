@@ -150,7 +150,8 @@ def replicate_statistics(
     (``zero_success_groups``, ``chi_square``), and a new group's successes in ``n_j`` trials
     with a fresh rate from the fitted population (``dispersion``, ``tail_share``,
     ``central_share``), which asks whether the population the model describes could have
-    produced these groups.
+    produced these groups. No pooling describes no population, so those three are not
+    computed for it.
     """
     data = counts_of(idata)
     seen = np.flatnonzero(data.trials > 0)
@@ -171,7 +172,8 @@ def replicate_statistics(
     tail_rep = np.zeros(s)
     central_obs = 0.0
     central_rep = np.zeros(s)
-    population = True
+    # no pooling claims no population: its groups are checked against their own rates only
+    population = attr(idata, "model") != "no-pooling"
     for cols in column_chunks(np.arange(m), s, settings.chunk_cells):
         th = theta[np.ix_(draws, seen[cols])]
         n = n_all[cols]
