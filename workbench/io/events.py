@@ -44,6 +44,7 @@ from .inputs import (
     _refuse_nul,
     _refuse_shared_columns,
     read_count,
+    reconcile,
 )
 
 #: Files larger than this (bytes) are read with DuckDB even when they hold counts.
@@ -353,38 +354,10 @@ def _load(src: _Source, *, group, successes, trials, outcome) -> LoadedData:
     names = np.asarray(names, dtype=object)
     ys, ns, rows = (np.asarray(v, dtype=np.int64) for v in (ys, ns, rows))
     counts = GroupCounts(names, ys, ns)
-    repeated = int((rows > 1).sum())
-    zero = [str(z) for z in names[ns == 0]]
-    notes = []
-    if outcome is not None:
-        notes.append(f"{rows_read} trial rows were counted into {counts.n_groups} groups.")
-    elif repeated:
-        notes.append(f"{repeated} groups appeared on more than one row; their rows were summed.")
-    if zero:
-        shown = ", ".join(repr(z) for z in zero[:5]) + (" ..." if len(zero) > 5 else "")
-        notes.append(
-            f"{len(zero)} group(s) have zero trials ({shown}); they are kept and their estimate"
-            " is the model's view of an unseen group."
-        )
-    reconciliation = {
-        "source": src.name,
-        "layout": "one row per trial" if outcome is not None else "aggregated counts",
-        "covariates": [],
-        "parent": None,
-        "columns": {
-            "group": group,
-            **({"outcome": outcome} if outcome else {"successes": successes, "trials": trials}),
-        },
-        "rows_read": rows_read,
-        "rows_used": rows_read,
-        "rows_dropped": 0,
-        "groups": counts.n_groups,
-        "groups_on_several_rows": repeated,
-        "zero_trial_groups": zero,
-        "total_successes": int(counts.successes.sum()),
-        "total_trials": int(counts.trials.sum()),
-    }
-    return LoadedData(counts, reconciliation, notes)
+    return reconcile(
+        counts, source=src.name, rows_read=rows_read, rows_per_group=rows,
+        group=group, successes=successes, trials=trials, outcome=outcome,
+    )
 
 
 def _report_problems(src, cols, per_row, flags, over, total, events) -> None:

@@ -533,11 +533,23 @@ def load_groups(
         covariates=cov_frame,
         parents=parents,
     )
-    repeated = int((summed["rows"] > 1).sum())
-    zero = summed.index[summed["trials"].to_numpy() == 0].astype(str).tolist()
+    return reconcile(
+        counts, source=name, rows_read=int(len(table)), rows_per_group=summed["rows"].to_numpy(),
+        group=group, successes=successes, trials=trials, outcome=outcome,
+        covariates=covariates, parent=parent,
+    )
+
+
+def reconcile(counts: GroupCounts, *, source: str, rows_read: int, rows_per_group,
+              group: str, successes: str, trials: str, outcome: str | None,
+              covariates=(), parent: str | None = None) -> LoadedData:
+    """The counts with their row reconciliation and notes: one rule for every reader."""
+    rows_per_group = np.asarray(rows_per_group)
+    repeated = int((rows_per_group > 1).sum())
+    zero = [str(z) for z in counts.names[counts.trials == 0]]
     notes = []
     if outcome is not None:
-        notes.append(f"{len(table)} trial rows were counted into {counts.n_groups} groups.")
+        notes.append(f"{rows_read} trial rows were counted into {counts.n_groups} groups.")
     elif repeated:
         notes.append(f"{repeated} groups appeared on more than one row; their rows were summed.")
     if zero:
@@ -547,7 +559,7 @@ def load_groups(
             " is the model's view of an unseen group."
         )
     reconciliation = {
-        "source": name,
+        "source": source,
         "layout": "one row per trial" if outcome is not None else "aggregated counts",
         "covariates": list(covariates),
         "parent": parent,
@@ -555,8 +567,8 @@ def load_groups(
             "group": group,
             **({"outcome": outcome} if outcome else {"successes": successes, "trials": trials}),
         },
-        "rows_read": int(len(table)),
-        "rows_used": int(len(table)),
+        "rows_read": int(rows_read),
+        "rows_used": int(rows_read),
         "rows_dropped": 0,
         "groups": counts.n_groups,
         "groups_on_several_rows": repeated,
