@@ -238,19 +238,14 @@ class Calibration:
         return self.summary["verdict"]
 
 
-def summarise(plan: Plan, results: list[dict], *, engine: str) -> Calibration:
-    """Rank uniformity, coverage and false-flag share over the finished replicates."""
-    results = sorted(results, key=lambda r: r["index"])
-    n = len(results)
-    if n == 0:
-        raise ParameterError("calibration has no finished replicate; give --replicates >= 1.")
+def _tables(plan: Plan, results: list[dict]) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """One row per (replicate, quantity) rank, and one row per replicate."""
     quantities = list(results[0]["ranks"])
-    rank_rows = [
+    ranks = pd.DataFrame([
         {"replicate": r["index"], "quantity": q, "rank": r["ranks"][q], "draws": plan.draws,
          "truth": r["truth"].get(q, np.nan)}
         for r in results for q in quantities
-    ]
-    ranks = pd.DataFrame(rank_rows)
+    ])
     rep = pd.DataFrame([
         {"replicate": r["index"], "seed": r["seed"], "seconds": r["seconds"],
          **{k: r["truth"][k] for k in POPULATION},
@@ -261,55 +256,71 @@ def summarise(plan: Plan, results: list[dict], *, engine: str) -> Calibration:
             if r["flags"] is not None else {})}
         for r in results
     ])
-    bins = _bins(plan.draws, n)
-    checks = len(quantities) + len(plan.levels) + (1 if plan.target is not None else 0)
-    per_check = FAMILY_ERROR / checks
-    z = float(stats.norm.ppf(1 - per_check / 2))
-    rank_docs = []
-    for q in quantities:
+    return ranks, rep
+
+
+def _rank_uniformity(ranks: pd.DataFrame, draws: int, bins: int, per_check: float) -> list[dict]:
+    """Pearson's chi-square on the binned ranks of each quantity."""
+    docs = []
+    for q in ranks["quantity"].unique():
         r = ranks.loc[ranks["quantity"] == q, "rank"].to_numpy()
-        counts = np.bincount(r * bins // (plan.draws + 1), minlength=bins)
+        counts = np.bincount(r * bins // (draws + 1), minlength=bins)
         if bins >= 2:
             chi = stats.chisquare(counts)
             statistic, p = float(chi.statistic), float(chi.pvalue)
         else:
             statistic, p = float("nan"), float("nan")
-        rank_docs.append({
+        docs.append({
             "quantity": q, "bins": bins, "counts": counts.tolist(), "chi_square": statistic,
             "df": bins - 1, "p_value": p,
             "uniform": bool(not (p < per_check)) if bins >= 2 else None,
         })
-    cover_docs = []
-    groups = len(plan.trials)
-    for level in plan.levels:
+    return docs
+
+
+def _coverage(rep: pd.DataFrame, levels, groups: int, z: float) -> list[dict]:
+    """Realised coverage per level, within z standard errors across replicates."""
+    n = len(rep)
+    docs = []
+    for level in levels:
         col = rep[f"coverage_{level:g}"].to_numpy()
         mean = float(col.mean())
         se = float(col.std(ddof=1) / math.sqrt(n)) if n > 1 else float("nan")
         floor = math.sqrt(level * (1 - level) / (n * groups))
         tol = z * max(se if np.isfinite(se) else floor, floor)
-        cover_docs.append({
+        docs.append({
             "level": level, "realised": mean, "se": se, "tolerance": tol,
             "within": bool(abs(mean - level) <= tol),
         })
-    flag_doc: dict | str = "not computed: no target rate"
-    if plan.target is not None:
-        realised = rep["false_share"].to_numpy()
-        expected = rep["expected_false_share"].to_numpy()
-        diff = realised - expected
-        se = float(diff.std(ddof=1) / math.sqrt(n)) if n > 1 else float("nan")
-        total_flagged = int(rep["flagged"].sum())
-        tol = z * se if np.isfinite(se) and se > 0 else 0.0
-        flag_doc = {
-            "target": plan.target, "fdr_level": plan.fdr,
-            "flagged_per_replicate": total_flagged / n,
-            "realised_false_share": float(realised.mean()),
-            "expected_false_share": float(expected.mean()),
-            "pooled_false_share": (float(rep["false_flags"].sum() / total_flagged)
-                                   if total_flagged else 0.0),
-            "se": se, "tolerance": tol,
-            "within": bool(float(diff.mean()) <= tol + 1e-12
-                           and float(realised.mean()) <= plan.fdr + tol),
-        }
+    return docs
+
+
+def _false_flags(rep: pd.DataFrame, plan: Plan, z: float) -> dict | str:
+    """The realised false-flag share against the share the flags' own FDR promises."""
+    if plan.target is None:
+        return "not computed: no target rate"
+    n = len(rep)
+    realised = rep["false_share"].to_numpy()
+    expected = rep["expected_false_share"].to_numpy()
+    diff = realised - expected
+    se = float(diff.std(ddof=1) / math.sqrt(n)) if n > 1 else float("nan")
+    total_flagged = int(rep["flagged"].sum())
+    tol = z * se if np.isfinite(se) and se > 0 else 0.0
+    return {
+        "target": plan.target, "fdr_level": plan.fdr,
+        "flagged_per_replicate": total_flagged / n,
+        "realised_false_share": float(realised.mean()),
+        "expected_false_share": float(expected.mean()),
+        "pooled_false_share": (float(rep["false_flags"].sum() / total_flagged)
+                               if total_flagged else 0.0),
+        "se": se, "tolerance": tol,
+        "within": bool(float(diff.mean()) <= tol + 1e-12
+                       and float(realised.mean()) <= plan.fdr + tol),
+    }
+
+
+def _verdict(rank_docs, cover_docs, flag_doc, bins: int, n: int) -> tuple[str, str]:
+    """The verdict word and its sentence."""
     problems = [f"ranks of {d['quantity']} not uniform (p {d['p_value']:.2g})"
                 for d in rank_docs if d["uniform"] is False]
     problems += [f"{d['level']:.0%} intervals cover {d['realised']:.1%}" for d in cover_docs
@@ -322,13 +333,29 @@ def summarise(plan: Plan, results: list[dict], *, engine: str) -> Calibration:
         verdict = "too few replicates"
     coverage_text = ", ".join(f"{d['level']:.0%}: {d['realised']:.1%}" for d in cover_docs)
     if problems:
-        sentence = f"{verdict}: " + "; ".join(problems)
-    elif bins < 2:
-        sentence = (f"too few replicates: {n} cannot test rank uniformity (need at least"
-                    f" {2 * MIN_PER_BIN})")
-    else:
-        sentence = (f"calibrated: ranks uniform for {len(quantities)} quantities; coverage"
-                    f" {coverage_text}")
+        return verdict, f"{verdict}: " + "; ".join(problems)
+    if bins < 2:
+        return verdict, (f"too few replicates: {n} cannot test rank uniformity (need at least"
+                         f" {2 * MIN_PER_BIN})")
+    return verdict, (f"calibrated: ranks uniform for {len(rank_docs)} quantities; coverage"
+                     f" {coverage_text}")
+
+
+def summarise(plan: Plan, results: list[dict], *, engine: str) -> Calibration:
+    """Rank uniformity, coverage and false-flag share over the finished replicates."""
+    results = sorted(results, key=lambda r: r["index"])
+    n = len(results)
+    if n == 0:
+        raise ParameterError("calibration has no finished replicate; give --replicates >= 1.")
+    ranks, rep = _tables(plan, results)
+    bins = _bins(plan.draws, n)
+    checks = len(results[0]["ranks"]) + len(plan.levels) + (1 if plan.target is not None else 0)
+    per_check = FAMILY_ERROR / checks
+    z = float(stats.norm.ppf(1 - per_check / 2))
+    rank_docs = _rank_uniformity(ranks, plan.draws, bins, per_check)
+    cover_docs = _coverage(rep, plan.levels, len(plan.trials), z)
+    flag_doc = _false_flags(rep, plan, z)
+    verdict, sentence = _verdict(rank_docs, cover_docs, flag_doc, bins, n)
     doc = {
         "verdict": verdict,
         "sentence": sentence,
@@ -336,7 +363,7 @@ def summarise(plan: Plan, results: list[dict], *, engine: str) -> Calibration:
         "engine": engine,
         "replicates": n,
         "draws": plan.draws,
-        "groups": groups,
+        "groups": len(plan.trials),
         "tracked_groups": [plan.names[j] for j in plan.tracked],
         "seed": plan.seed,
         "plan_key": plan.key(),

@@ -103,6 +103,62 @@ def _window_mass(a, b, m, first, length) -> np.ndarray:
     return np.exp(logpmf).sum(axis=1)
 
 
+def _first_crossing(a, b, todo, target, chance, max_trials, prob) -> np.ndarray:
+    """A first m reaching the chance, by doubling from 1 to ``max_trials`` (-1: none).
+
+    ``prob`` receives the last chance computed for groups that never reach it.
+    """
+    grid = [int(x) for x in 2 ** np.arange(0, int(np.log2(max_trials)) + 1)]
+    if grid[-1] != max_trials:
+        grid.append(int(max_trials))
+    first_hit = np.full(len(a), -1, dtype=np.int64)
+    active = todo
+    for m in grid:
+        if not active.size:
+            break
+        c = settle_chance(a[active], b[active], np.full(active.size, m), target)
+        hit = c >= chance
+        first_hit[active[hit]] = m
+        prob[active[~hit]] = c[~hit]
+        active = active[~hit]
+    return first_hit
+
+
+def _hold_from(a, b, found, first_hit, target, chance, max_trials, needed, prob) -> list[int]:
+    """The smallest m from which the chance stays at or above ``chance`` through a horizon.
+
+    The chance is computed at every m from 1 to the horizon (2 x the first hit + 20, widened
+    until the chance at the horizon holds, capped by ``max_trials``); fills ``needed`` and
+    ``prob`` in place and returns the groups still short at ``max_trials``.
+    """
+    horizon = np.minimum(int(max_trials), 2 * first_hit + 20)
+    pending = found
+    missing: list[int] = []
+    while pending.size:
+        widen = []
+        for batch in _batches(pending, horizon[pending], SCAN_PAIRS):
+            h = horizon[batch]
+            rows = np.repeat(np.arange(batch.size), h)
+            ms = np.arange(h.sum()) - np.repeat(np.cumsum(h) - h, h) + 1
+            c = settle_chance(a[batch][rows], b[batch][rows], ms, target)
+            ends = np.cumsum(h)
+            for i, j in enumerate(batch):
+                ci = c[ends[i] - h[i]: ends[i]]
+                below = np.flatnonzero(ci < chance)
+                if below.size and below[-1] == h[i] - 1:  # still short at the horizon
+                    if h[i] >= max_trials:
+                        missing.append(j)
+                    else:
+                        horizon[j] = min(int(max_trials), 2 * int(h[i]))
+                        widen.append(j)
+                    continue
+                start = int(below[-1]) + 1 if below.size else 0
+                needed[j] = start + 1
+                prob[j] = float(ci[start])
+        pending = np.asarray(widen, dtype=np.int64)
+    return missing
+
+
 def trials_needed_table(
     inp: GroupDraws,
     target: float,
@@ -134,49 +190,9 @@ def trials_needed_table(
     needed[settled] = 0
     prob[settled] = 1.0
     todo = np.flatnonzero(~settled)
-    # 1. a first m that reaches the chance: doubling from 1 to max_trials
-    grid = [int(x) for x in 2 ** np.arange(0, int(np.log2(max_trials)) + 1)]
-    if grid[-1] != max_trials:
-        grid.append(int(max_trials))
-    first_hit = np.full(g, -1, dtype=np.int64)
-    active = todo
-    for m in grid:
-        if not active.size:
-            break
-        c = settle_chance(a[active], b[active], np.full(active.size, m), target)
-        hit = c >= chance
-        first_hit[active[hit]] = m
-        prob[active[~hit]] = c[~hit]
-        active = active[~hit]
-    # 2. every m from 1 to a horizon: the reported m is the smallest from which the chance
-    #    stays at or above ``chance`` through the horizon (2 x the first hit + 20, widened
-    #    until the chance at the horizon holds, capped by max_trials)
+    first_hit = _first_crossing(a, b, todo, target, chance, max_trials, prob)
     found = todo[first_hit[todo] > 0]
-    horizon = np.minimum(int(max_trials), 2 * first_hit + 20)
-    pending = found
-    missing: list[int] = []
-    while pending.size:
-        widen = []
-        for batch in _batches(pending, horizon[pending], SCAN_PAIRS):
-            h = horizon[batch]
-            rows = np.repeat(np.arange(batch.size), h)
-            ms = np.arange(h.sum()) - np.repeat(np.cumsum(h) - h, h) + 1
-            c = settle_chance(a[batch][rows], b[batch][rows], ms, target)
-            ends = np.cumsum(h)
-            for i, j in enumerate(batch):
-                ci = c[ends[i] - h[i]: ends[i]]
-                below = np.flatnonzero(ci < chance)
-                if below.size and below[-1] == h[i] - 1:  # still short at the horizon
-                    if h[i] >= max_trials:
-                        missing.append(j)
-                    else:
-                        horizon[j] = min(int(max_trials), 2 * int(h[i]))
-                        widen.append(j)
-                    continue
-                start = int(below[-1]) + 1 if below.size else 0
-                needed[j] = start + 1
-                prob[j] = float(ci[start])
-        pending = np.asarray(widen, dtype=np.int64)
+    missing = _hold_from(a, b, found, first_hit, target, chance, max_trials, needed, prob)
     found = np.setdiff1d(found, np.asarray(missing, dtype=np.int64))
     status = np.where(
         settled,
