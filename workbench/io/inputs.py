@@ -19,6 +19,7 @@ import pandas as pd
 
 from ..models import DataError, GroupCounts
 from ..models.exceptions import join_problems
+from ..options import label
 from .runfolder import NEW_GROUP_LABEL
 
 TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
@@ -162,12 +163,18 @@ def _check_header(columns: list[str], name: str) -> None:
         seen[c] = j
 
 
+def _naming(option: str) -> str:
+    """How the caller names a column for ``option``: ``--group COLUMN`` or ``group=COLUMN``."""
+    spelled = label(option)
+    return f"{spelled}COLUMN" if spelled.endswith("=") else f"{spelled} COLUMN"
+
+
 def _require_columns(table: pd.DataFrame, wanted: dict[str, str], name: str) -> None:
     found = list(table.columns)
     for option, column in wanted.items():
         if column not in table.columns:
             raise DataError(
-                f"no column {column!r} in {name}; found {found}. Pass {option}=COLUMN naming it."
+                f"no column {column!r} in {name}; found {found}. Pass {_naming(option)} naming it."
             )
 
 
