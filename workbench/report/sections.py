@@ -72,23 +72,39 @@ def title(record: dict, path: Path) -> tuple[str, str]:
     return name, sub
 
 
+#: The banner's headline and meaning for each verdict (README, "Exit codes and the verdict").
+BANNERS = {
+    "ready": (
+        "READY: the convergence and model checks passed",
+        "R-hat, effective sample sizes, the sampler's own checks and the posterior predictive"
+        " checks are within their pass marks, so the numbers below may be used, with the"
+        " cautions at the end.",
+    ),
+    "not-ready": (
+        "NOT READY: nothing in this report is final",
+        "The convergence diagnostics failed, or too few draws back the numbers computed from"
+        " them. Every estimate, rank and flag below is provisional and must not be used for"
+        " decisions until a re-run is ready.",
+    ),
+    "misfit": (
+        "MISFIT: the model does not reproduce the data; nothing in this report is final",
+        "The sampler converged, but the posterior predictive checks found data the model does"
+        " not reproduce (see the checks section). Every estimate, rank and flag below rests on"
+        " that model and must not be used for decisions until a model that fits is chosen.",
+    ),
+}
+
+
 def verdict(folder: FolderContents) -> dict:
     """The banner and section 3: verdict, reasons, remedies, diagnostics and pass marks."""
     diag = folder.diagnostics
     word = diag.get("verdict") or folder.record.get("verdict") or "unknown"
     ready = word == "ready"
+    headline, meaning = BANNERS.get(word, BANNERS["not-ready"])
     return {
         "cls": "ready" if ready else "not-ready",
-        "headline": "READY: the convergence checks passed"
-        if ready
-        else "NOT READY: nothing in this report is final",
-        "meaning": (
-            "R-hat, effective sample sizes and the sampler's own checks are within their pass"
-            " marks, so the numbers below may be used, with the cautions at the end."
-            if ready
-            else "The convergence diagnostics failed. Every estimate, rank and flag below is"
-            " provisional and must not be used for decisions until a re-run is ready."
-        ),
+        "headline": headline,
+        "meaning": meaning,
         "reasons": [r.get("text", pretty(r)) for r in diag.get("reasons", [])],
         "remedies": list(diag.get("remedies", [])),
         "notes": list(diag.get("notes", [])),

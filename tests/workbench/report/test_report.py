@@ -81,7 +81,7 @@ def html(run_folder) -> str:
 def test_report_has_every_section_and_the_verdict(html):
     for anchor in SECTION_IDS:
         assert f'id="{anchor}"' in html, anchor
-    assert "READY: the convergence checks passed" in html
+    assert "READY: the convergence and model checks passed" in html
     assert 'id="estimates-table"' in html
     for caution in report.CAUTIONS:
         assert caution.replace("'", "&#39;") in html
@@ -461,3 +461,22 @@ def test_reports_in_headless_chromium(run_folder, tmp_path):
             page.close()
         finally:
             browser.close()
+
+
+def test_a_misfit_run_is_named_misfit_not_a_convergence_failure(tmp_path):
+    # issue 10: complete pooling on the demo's spread-out branches converges (exact engine)
+    # but the predictive checks find the misfit; the banner must say so, not "READY" and not
+    # "the convergence diagnostics failed"
+    out = tmp_path / "misfit"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        run = api.fit(api.demo_data_path(), group="branch", successes="signups",
+                      trials="visitors", model="complete-pooling", seed=1, out=out, report=True)
+    assert run.verdict == "misfit"
+    page = path_of(out, "report").read_text(encoding="utf-8")
+    banner = re.search(
+        r'<div id="verdict" class="verdict ([^"]+)"[^>]*>\s*<p class="word">([^<]+)', page)
+    assert banner.group(1) == "not-ready"  # drawn in the warning colour
+    assert banner.group(2).startswith("MISFIT")
+    assert "READY: the convergence" not in page
+    assert "The convergence diagnostics failed" not in page
