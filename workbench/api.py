@@ -46,8 +46,10 @@ def demo_data_path() -> Path:
 
 
 def fit(source, **options) -> Run:
+    given = options.get("dask")
+    client = given if given is not None and not isinstance(given, str) else None
     settings = FitSettings.from_options(**options)
-    run = pipeline.fit_run(source, settings)
+    run = pipeline.fit_run(source, settings, client=client if settings["dask"] else None)
     if settings["out"] is not None:
         write_run(run, settings["out"], report=settings["report"])
     return run

@@ -236,6 +236,20 @@ class Texts:
 
 
 @dataclass(frozen=True)
+class Address:
+    """A Dask scheduler's address; a connected ``distributed.Client`` gives its own."""
+
+    def describe(self) -> str:
+        return "a scheduler address (tcp://HOST:8786) or, from Python, a distributed.Client"
+
+    def __call__(self, name: str, value: object) -> str:
+        scheduler = getattr(value, "scheduler", None)
+        if not isinstance(value, str) and isinstance(getattr(scheduler, "address", None), str):
+            value = scheduler.address  # only the address is a setting (run.json)
+        return Text()(name, value)
+
+
+@dataclass(frozen=True)
 class Switch:
     """True or False (on the command line: a flag that takes no value)."""
 
@@ -490,6 +504,16 @@ OUTPUT_OPTIONS = _options(
            "also write the report (one HTML page, and its figures as PNG files) into the run folder", "output"),
 )
 
+#: where the work runs
+CLUSTER_OPTIONS = _options(
+    Option(
+        "dask", None, Optional(Address()),
+        "read the data file and score the groups on the Dask cluster whose scheduler is at"
+        " ADDRESS (needs the dask extra); the model's population fit stays here",
+        "cluster", "ADDRESS", "none: everything runs on this machine",
+    ),
+)
+
 #: ``workbench fit`` and :func:`workbench.api.fit`; run.json "settings" has exactly these keys
 FIT_OPTIONS: dict[str, Option] = {
     **COLUMN_OPTIONS,
@@ -498,6 +522,7 @@ FIT_OPTIONS: dict[str, Option] = {
     **RESULT_OPTIONS,
     **RANKING_OPTIONS,
     **OUTPUT_OPTIONS,
+    **CLUSTER_OPTIONS,
 }
 
 #: options that shape the model's posterior (a second fit with the same ones is the same fit)

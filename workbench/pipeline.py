@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from . import progress
+from .analysis import partitioned
 from .analysis import verify as verification
 from .analysis.checks import check_posterior
 from .analysis.diagnostics import MISFIT, diagnose, first_remedy_settings, include_checks
@@ -24,7 +25,7 @@ from .analysis.predictions import default_seed, predict
 from .analysis.ranking import compute as compute_ranking
 from .analysis.ranking import merge_estimate_columns, rank_options
 from .analysis.settings import CheckSettings
-from .io import events
+from .io import cluster, events
 from .io.inputs import LoadedData, load_groups
 from .io.runfolder import check_replaceable
 from .models import MODELS, ConvergenceWarning, ParameterError, attr, make_model
@@ -45,10 +46,17 @@ PRIOR_USERS = {
 EXACT_STORED_CELLS = 100_000_000
 
 
-def load(source, settings: FitSettings) -> LoadedData:
+def load(source, settings: FitSettings, client=None) -> LoadedData:
     """The input table, read and reconciled with the settings' columns."""
     if isinstance(source, LoadedData):
         return source
+    if settings["dask"] is not None:  # checked and summed on the cluster
+        cluster.check_source(source, settings)
+        with cluster.connect(settings["dask"], client) as client:
+            return cluster.load_on_cluster(source, client, group=settings["group"],
+                                           successes=settings["successes"],
+                                           trials=settings["trials"],
+                                           outcome=settings["outcome"])
     if events.wanted(source, outcome=settings["outcome"], query=settings["query"],
                      covariates=settings["covariates"], parent=settings["parent"]):
         return events.load_events(source, group=settings["group"],
@@ -296,12 +304,31 @@ def add_predictions(run: Run) -> None:
     run.record_parts["prediction"] = pred.record
 
 
-def fit_run(source, settings: FitSettings) -> Run:
-    """Load, fit, summarise, diagnose and compute every table: one run, not yet written."""
+def summarise(estimator, settings: FitSettings, client=None) -> tuple[pd.DataFrame, dict]:
+    """The estimates table; on a cluster, its closed forms scored in partitions there."""
+    level, target = settings["level"], settings["target"]
+    if client is not None and partitioned.can_score(estimator):
+        return partitioned.score_on_cluster(client, estimator, level, target)
+    return estimator.summary(level, target=target), {"scored_on": "this machine"}
+
+
+def fit_run(source, settings: FitSettings, client=None) -> Run:
+    """Load, fit, summarise, diagnose and compute every table: one run, not yet written.
+
+    With the ``dask`` setting, the scheduler is reached first (``client``, a
+    ``distributed.Client``, is used as given), the file is read on the cluster and the
+    group estimates are scored there (:mod:`workbench.io.cluster`,
+    :mod:`workbench.analysis.partitioned`).
+    """
+    if settings["dask"] is not None and client is None:
+        if not isinstance(source, LoadedData):
+            cluster.check_source(source, settings)
+        with cluster.connect(settings["dask"]) as client:
+            return fit_run(source, settings, client)
     if settings["out"] is not None:  # --out problems are known now, not after the fit
         check_replaceable(settings["out"])
     with progress.step("reading data"):
-        loaded = load(source, settings)
+        loaded = load(source, settings, client)
     check_model_inputs(loaded, settings)
     check_size(settings, loaded.counts.n_groups)
     started = time.perf_counter()
@@ -321,11 +348,12 @@ def fit_run(source, settings: FitSettings) -> Run:
             estimator = fit_model(loaded, settings)
             diagnostics = diagnose(estimator.idata_)
     level = settings["level"]
+    estimates, scored = summarise(estimator, settings, client)
     run = Run(
         loaded,
         estimator,
         settings.record(),
-        estimator.summary(level, target=settings["target"]),
+        estimates,
         estimator.population(level),
         diagnostics,
         record_parts=record_parts,
@@ -333,6 +361,9 @@ def fit_run(source, settings: FitSettings) -> Run:
     )
     run.record_parts["sampling"] = {"draws_per_chain": int(estimator.draws),
                                     "chains": int(estimator.chains)}
+    if client is not None:
+        read = "this machine" if isinstance(source, LoadedData) else "cluster"
+        run.record_parts["cluster"] = {**cluster.describe(client), "read_on": read, **scored}
     note = spread_note(estimator, level)
     if note:
         messages.append(note)

@@ -28,7 +28,7 @@ from .report import render_into
 from .results import Run, RunFolder
 
 #: keys of run.json written from a fitted run's record parts
-RECORD_PARTS = ("ranking", "verification", "retry", "sampling", "prediction")
+RECORD_PARTS = ("ranking", "verification", "retry", "sampling", "prediction", "cluster")
 
 
 def not_final_text(run: Run) -> str:

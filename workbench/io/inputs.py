@@ -394,42 +394,14 @@ def _refuse_shared_columns(**roles) -> None:
             seen[column] = role
 
 
-def load_groups(
-    source: str | Path | pd.DataFrame,
-    *,
-    group: str = "group",
-    successes: str = "successes",
-    trials: str = "trials",
-    outcome: str | None = None,
-    covariates: list[str] | tuple[str, ...] = (),
-    parent: str | None = None,
-) -> LoadedData:
-    """Read, validate and aggregate a table into :class:`models.GroupCounts`.
+def check_rows(table: pd.DataFrame, *, group: str, successes: str, trials: str,
+               outcome: str | None, rows: _Rows = _NO_LINES):
+    """Every row checked by the strict rules: group labels, counts (or outcomes), y <= n.
 
-    ``covariates`` name numeric group-level columns (one value per group: rows of one group
-    must agree); they are kept beside the counts for models that use them. ``parent`` names
-    the column of each group's parent (a region for stores), one per group, for the nested
-    model.
-
-    Raises
-    ------
-    DataError
-        One line naming the row(s), group, column, value and the fix; up to five problems.
+    Returns ``(labels, successes, trials, problems)``; ``problems`` holds (row, sentence
+    maker) pairs for :func:`_raise_problems`. One home for the row rules: the pandas reader
+    and the cluster reader (:mod:`workbench.io.cluster`, one partition at a time) use it.
     """
-    table, name, rows = _read(source)
-    _refuse_shared_columns(group=group, successes=None if outcome is not None else successes,
-                           trials=None if outcome is not None else trials, outcome=outcome,
-                           parent=parent, covariates=covariates)
-    if outcome is not None:
-        _require_columns(table, {"group": group, "outcome": outcome}, name)
-    else:
-        _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
-    for c in covariates:
-        _require_columns(table, {"covariates": c}, name)
-    if parent is not None:
-        _require_columns(table, {"parent": parent}, name)
-    if len(table) == 0:
-        raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
     column = table[group]
     labels = column.where(column.notna(), "").astype(str)
     problems: list = []
@@ -470,6 +442,47 @@ def load_groups(
             ),
             rows,
         )
+    return labels, y, n, problems
+
+
+def load_groups(
+    source: str | Path | pd.DataFrame,
+    *,
+    group: str = "group",
+    successes: str = "successes",
+    trials: str = "trials",
+    outcome: str | None = None,
+    covariates: list[str] | tuple[str, ...] = (),
+    parent: str | None = None,
+) -> LoadedData:
+    """Read, validate and aggregate a table into :class:`models.GroupCounts`.
+
+    ``covariates`` name numeric group-level columns (one value per group: rows of one group
+    must agree); they are kept beside the counts for models that use them. ``parent`` names
+    the column of each group's parent (a region for stores), one per group, for the nested
+    model.
+
+    Raises
+    ------
+    DataError
+        One line naming the row(s), group, column, value and the fix; up to five problems.
+    """
+    table, name, rows = _read(source)
+    _refuse_shared_columns(group=group, successes=None if outcome is not None else successes,
+                           trials=None if outcome is not None else trials, outcome=outcome,
+                           parent=parent, covariates=covariates)
+    if outcome is not None:
+        _require_columns(table, {"group": group, "outcome": outcome}, name)
+    else:
+        _require_columns(table, {"group": group, "successes": successes, "trials": trials}, name)
+    for c in covariates:
+        _require_columns(table, {"covariates": c}, name)
+    if parent is not None:
+        _require_columns(table, {"parent": parent}, name)
+    if len(table) == 0:
+        raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
+    labels, y, n, problems = check_rows(table, group=group, successes=successes,
+                                        trials=trials, outcome=outcome, rows=rows)
     x = {}
     for c in covariates:
         values = pd.to_numeric(table[c].astype("string").str.strip(), errors="coerce")
