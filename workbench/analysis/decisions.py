@@ -37,6 +37,38 @@ def _smallest_true(pred, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
         lo = np.where(open_ & ~t, mid + 1, lo)
 
 
+def _smallest_true_near(pred, guess: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """:func:`_smallest_true`, started from a guess: gallop from it to a bracket, then bisect.
+
+    Exact whatever the guess (the bracket is checked by ``pred`` itself); a guess within a few
+    integers of the answer takes a handful of ``pred`` calls instead of log2(hi - lo).
+    """
+    def holds(y):  # ``hi`` is treated as True (it may lie past the last valid count)
+        return np.where(y >= hi, True, pred(np.minimum(y, hi - 1)))
+
+    g = np.clip(guess, lo, hi)
+    at = holds(g)
+    low, high = lo.copy(), hi.copy()
+    high = np.where(at, g, high)  # pred holds at g: the answer is at most g
+    low = np.where(at, low, g + 1)  # it fails at g: the answer is above g
+    step = np.ones_like(g)
+    down, up = at & (g > lo), ~at & (g < hi)
+    while down.any() or up.any():
+        cand = np.where(down, np.maximum(g - step, lo), np.minimum(g + step, hi))
+        t = holds(cand)
+        # going down: a failure at cand closes the bracket (cand, high]
+        low = np.where(down & ~t, cand + 1, low)
+        high = np.where(down & t, cand, high)
+        # going up: a success at cand closes the bracket [low, cand]
+        high = np.where(up & t, cand, high)
+        low = np.where(up & ~t, cand + 1, low)
+        down = down & t & (cand > lo)
+        up = up & ~t & (cand < hi)
+        g = np.where(down | up, cand, g)
+        step = step * 2
+    return _smallest_true(pred, np.minimum(low, high), high)
+
+
 def settle_chance(
     a: np.ndarray,
     b: np.ndarray,
@@ -63,10 +95,17 @@ def settle_chance(
 
     zero = np.zeros_like(m)
     top = m + 1
+    # starting guesses from the normal approximation of the updated Beta (exactness comes
+    # from the search, not from the guess)
+    total = a + b + m
+    spread = np.sqrt(target * (1 - target) / (total + 1))
+    guess_high = np.floor((target + special.ndtri(high) * spread) * total - a).astype(np.int64)
+    guess_low = np.floor((target - special.ndtri(1 - low) * spread) * total - a).astype(np.int64)
     # smallest y with P(above) > high  <=>  cdf < 1 - high
-    y_high = _smallest_true(lambda y: cdf_at_target(y) < 1 - high, zero, top)
+    y_high = _smallest_true_near(lambda y: cdf_at_target(y) < 1 - high, guess_high, zero, top)
     # smallest y with P(above) >= low  <=>  cdf <= 1 - low; y_low is the one before
-    y_low = _smallest_true(lambda y: cdf_at_target(y) <= 1 - low, zero, top) - 1
+    y_low = _smallest_true_near(lambda y: cdf_at_target(y) <= 1 - low, guess_low, zero,
+                                top) - 1
     first = y_low + 1
     length = np.maximum(y_high - first, 0)
     unsettled = np.zeros(len(a))
@@ -93,12 +132,24 @@ def _batches(items: np.ndarray, sizes: np.ndarray, most: int):
 
 
 def _window_mass(a, b, m, first, length) -> np.ndarray:
-    """Beta-binomial(m, a, b) mass of y = first .. first + length - 1, summed per row."""
+    """Beta-binomial(m, a, b) mass of y = first .. first + length - 1, summed per row.
+
+    The pmf at ``first`` comes from :func:`betabinom_logpmf`; the rest of the window by the
+    ratio of neighbours, pmf(y + 1) / pmf(y) = (m - y)(a + y) / ((y + 1)(b + m - y - 1)),
+    so each term costs one logarithm instead of five log-gamma functions.
+    """
     span = int(length.max())
-    j = np.arange(span)[None, :]
-    y = first[:, None] + j
+    m = m.astype(float)
     with np.errstate(divide="ignore", invalid="ignore"):
-        logpmf = betabinom_logpmf(y, m[:, None].astype(float), a[:, None], b[:, None])
+        start = betabinom_logpmf(first.astype(float), m, a, b)
+        y = first[:, None] + np.arange(span - 1)[None, :]
+        step = np.log((m[:, None] - y) * (a[:, None] + y)) - np.log(
+            (y + 1.0) * (b[:, None] + m[:, None] - y - 1.0))
+    logpmf = np.empty((len(a), span))
+    logpmf[:, 0] = start
+    np.cumsum(step, axis=1, out=logpmf[:, 1:])
+    logpmf[:, 1:] += start[:, None]
+    j = np.arange(span)[None, :]
     logpmf = np.where(j < length[:, None], logpmf, -np.inf)
     return np.exp(logpmf).sum(axis=1)
 

@@ -74,3 +74,22 @@ def test_the_groups_zig_zag(table):
         first = int(np.argmax(brute_chances(a, b, int(m), TARGET) >= CHANCE)) + 1
         zig += first < int(m)
     assert zig >= 3
+
+
+def test_search_from_a_guess_finds_what_plain_bisection_finds():
+    # the guess only saves work: any guess, even far off or outside [lo, hi], gives the same
+    # threshold as plain bisection (checked on random monotone step predicates)
+    from workbench.analysis.decisions import _smallest_true, _smallest_true_near
+
+    rng = np.random.default_rng(11)
+    hi = rng.integers(1, 5000, size=2000)
+    lo = np.zeros_like(hi)
+    answer = (rng.uniform(size=hi.size) * (hi + 1)).astype(np.int64)  # hi itself included
+
+    def pred(y):
+        return y >= answer
+
+    for guess in (answer, answer + rng.integers(-40, 40, size=hi.size),
+                  rng.integers(-10_000, 10_000, size=hi.size), np.zeros_like(hi), hi + 7):
+        np.testing.assert_array_equal(_smallest_true_near(pred, guess, lo, hi),
+                                      _smallest_true(pred, lo, hi))
