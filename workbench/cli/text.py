@@ -117,24 +117,32 @@ def format_ranking(
         return ""
     k = record["top_k"]
     level = record["level"]
-    lines = [
-        f"ranks: {record['groups']} groups, {record['better']} rate is better, rank 1 = best,"
-        f" {record['draws']} draws; median {level:.0%} rank interval spans"
-        f" {float((ranks['rank_upper'] - ranks['rank_lower']).median()):.0f} places"
-    ]
-    for r in ranks.head(rows).itertuples():
-        lines.append(
-            f"  {str(r.group)[:28]:<28} rank {r.rank_median:g} [{r.rank_lower:g}, {r.rank_upper:g}]"
-            f"  P(best {k}) {r.prob_best_k:.2f}"
-        )
-    sure = int((ranks["prob_best_k"] >= 0.9).sum())
-    lines.append(f"  {sure} group(s) with P(in best {k}) >= 0.9")
+    ranked = ranks.dropna(subset=["rank_median"])
+    note = record.get("ranking_note") or ""
+    if ranked.empty:
+        lines = [f"ranks: none: {note or 'no group has a rank'}"]
+    else:
+        lines = [
+            f"ranks: {len(ranked)} groups, {record['better']} rate is better, rank 1 = best,"
+            f" {record['draws']} draws; median {level:.0%} rank interval spans"
+            f" {float((ranked['rank_upper'] - ranked['rank_lower']).median()):.0f} places"
+        ]
+        for r in ranked.head(rows).itertuples():
+            lines.append(
+                f"  {str(r.group)[:28]:<28} rank {r.rank_median:g}"
+                f" [{r.rank_lower:g}, {r.rank_upper:g}]  P(best {k}) {r.prob_best_k:.2f}"
+            )
+        sure = int((ranked["prob_best_k"] >= 0.9).sum())
+        lines.append(f"  {sure} group(s) with P(in best {k}) >= 0.9")
+        if note:
+            lines.append(f"  {note}")
     if targets is not None:
         ab, be = targets["above"], targets["below"]
+        words = targets.get("flag_words") or {"above": "above", "below": "below"}
         lines.append(
-            f"target {targets['target']:g}: {ab['flagged']} flagged above (expected false share"
-            f" {ab['expected_false_share']:.3f}), {be['flagged']} below"
-            f" ({be['expected_false_share']:.3f}); level {targets['fdr_level']:g}"
+            f"target {targets['target']:g}: {ab['flagged']} flagged {words['above']}, expected"
+            f" false share {ab['expected_false_share']:.3f}; {be['flagged']} {words['below']},"
+            f" {be['expected_false_share']:.3f}; level {targets['fdr_level']:g}"
         )
     funnel = tables.get("funnel")
     if funnel is not None:

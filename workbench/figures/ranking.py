@@ -214,7 +214,8 @@ def plot_ranks(
     if "prob_best_k" in ranks.columns:
         sort_cols.insert(1, "prob_best_k")
         ascending.insert(1, False)
-    table = ranks.sort_values(sort_cols, ascending=ascending)
+    unranked = int(ranks["rank_median"].isna().sum())  # groups with no trials: no data
+    table = ranks.dropna(subset=["rank_median"]).sort_values(sort_cols, ascending=ascending)
     n = len(table)
     if k is None:
         k = int(ranks["k"].iloc[0]) if "k" in ranks.columns and n else 5
@@ -257,6 +258,9 @@ def plot_ranks(
     _legend_below(ax, handles if k else handles[2:], ncols=3)
     shown = "all" if band is None else f"first and last {show} of"
     _title(ax, f"Ranks with their intervals ({shown} {_count(n)} groups)")
+    if unranked:
+        _corner_note(ax, f"{_count(unranked)} group(s) with no trials: no data, not ranked",
+                     top=True)
     return ax
 
 

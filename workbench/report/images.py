@@ -121,7 +121,7 @@ def _ranking_makers(folder: FolderContents) -> dict[str, Maker]:
     t = folder.tables
     ranking = folder.record.get("ranking") or {}
     makers: dict[str, Maker] = {}
-    if "ranks" in t:
+    if "ranks" in t and t["ranks"]["rank_median"].notna().any():
         makers["ranks"] = (
             lambda: figures.plot_ranks(t["ranks"], k=ranking.get("top_k")),
             "Rank medians and intervals, best placed first.",

@@ -60,6 +60,8 @@ table.data th.t { text-align: left; }
 .scroll table { margin: 0; }
 tr.flag-above td.flag { color: var(--blue); font-weight: 600; }
 tr.flag-below td.flag { color: var(--ochre); font-weight: 600; }
+tr.flag-better td.flag { color: var(--blue); font-weight: 600; }
+tr.flag-worse td.flag { color: var(--ochre); font-weight: 600; }
 tr.gap td { text-align: center; font-style: italic; color: var(--soft); background: var(--wash); }
 button.sort { font: inherit; font-weight: 600; background: none; border: 0; padding: 0;
   cursor: pointer; color: inherit; text-align: inherit; }
@@ -262,7 +264,8 @@ TEMPLATE = """<!DOCTYPE html>
 
 <section id="ranks">
 <h2><span class="no">6</span>Ranks and targets</h2>
-{% if ranks %}
+{% if ranks and ranks.none %}<p><strong>No ranking:</strong> {{ ranks.none }}.</p>
+{% elif ranks %}
 <p>{{ ranks.note }}</p>
 {{ figure("ranks", ranks.caption) }}
 <div class="grid2">

@@ -237,6 +237,20 @@ def population(folder: FolderContents) -> Table | None:
     )
 
 
+def flag_class(flag, better: str | None) -> str:
+    """The row class of a target flag: ``flag-better`` or ``flag-worse`` (its colour follows
+    good and bad, not the side); a folder written before the flags said better or worse is
+    read with its ``better`` setting."""
+    flag = "" if flag is None or (isinstance(flag, float) and flag != flag) else str(flag)
+    if not flag:
+        return ""
+    if flag.endswith("(better)") or flag.endswith("(worse)"):
+        good = flag.endswith("(better)")
+    else:
+        good = flag.startswith("above") == ((better or "higher") == "higher")
+    return "flag-better" if good else "flag-worse"
+
+
 def estimates(folder: FolderContents, table_rows: int) -> tuple[Table, str]:
     """Section 5: the estimates table, whole or its highest and lowest rows, and a note."""
     est = folder.estimates
@@ -249,9 +263,10 @@ def estimates(folder: FolderContents, table_rows: int) -> tuple[Table, str]:
     if isinstance(level, float):
         lab["lower"], lab["upper"] = f"{level:.0%} lower", f"{level:.0%} upper"
 
+    better = (folder.record.get("ranking") or {}).get("better") or folder.settings.get("better")
+
     def row_class(r):
-        flag = str(r.get("target_flag") or "")
-        return "flag-above" if flag.startswith("above") else "flag-below" if flag else ""
+        return flag_class(r.get("target_flag"), better)
 
     if n <= table_rows:
         note = (
