@@ -210,6 +210,10 @@ TEMPLATE = """<!DOCTYPE html>
 <h3>Population</h3>
 {% if population %}{{ data_table(population) }}{% else %}{{ absent("Population parameters", "not in this model") }}{% endif %}
 {{ figure("population", "Posterior draws of the population parameters; the orange band is the interval from " ~ population_file ~ ".") }}
+{% if parents %}<h3>Parents</h3>
+<p class="small">Each parent's effect on the log-odds (0 is the population: a positive effect lifts the rates of its groups) and the rate of its typical group, from {{ parents_file }}.</p>
+{{ figure("parents", "Parent effects with their intervals, largest first; the typical group's rate at the right.") }}
+<div class="scroll">{{ data_table(parents) }}</div>{% endif %}
 <h3>Chain mixing</h3>
 {% if "mixing" in images %}
 {{ figure("mixing", "Traces of the population parameters by chain, and each chain's rank histogram; well-mixed chains overlap and give flat, alike histograms.") }}

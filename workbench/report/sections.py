@@ -51,6 +51,9 @@ STATISTIC_NAMES = {
     "sd_rate": "sd of observed rates",
     "max_rate": "highest observed rate",
     "min_rate": "lowest observed rate",
+    "dispersion": "standardised dispersion",
+    "tail_share": "share outside their central 95%",
+    "central_share": "share inside their central 50%",
     "zero_success_groups": "groups with no successes",
     "chi_square": "chi-square discrepancy",
 }
@@ -249,6 +252,25 @@ def flag_class(flag, better: str | None) -> str:
     else:
         good = flag.startswith("above") == ((better or "higher") == "higher")
     return "flag-better" if good else "flag-worse"
+
+
+def parents(folder: FolderContents) -> Table | None:
+    """Section 2 (nested model): each parent's effect and the rate of its typical group."""
+    frame = folder.tables.get("parents")
+    if frame is None or frame.empty:
+        return None
+    level = folder.settings.get("level")
+    lab = f"{level:.0%} " if isinstance(level, float) else ""
+    frame = frame.sort_values(["effect_mean", "parent"], ascending=[False, True], kind="stable")
+    return page_table(
+        frame,
+        labels={"effect_mean": "effect (log-odds)", "effect_lower": f"{lab}lower",
+                "effect_upper": f"{lab}upper", "typical_rate_median": "typical group's rate",
+                "typical_rate_lower": f"{lab}lower", "typical_rate_upper": f"{lab}upper"},
+        kinds={"groups": "int", "effect_mean": "num", "effect_lower": "num",
+               "effect_upper": "num", "typical_rate_median": "rate",
+               "typical_rate_lower": "rate", "typical_rate_upper": "rate"},
+    )
 
 
 def estimates(folder: FolderContents, table_rows: int) -> tuple[Table, str]:
