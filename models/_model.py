@@ -59,8 +59,9 @@ class NoPooling(_Conjugate):
         return theta, theta_new, {}, {}, None
 
     def _shrinkage(self) -> np.ndarray:
-        k = self.a + self.b
-        return k / (k + self.data_.trials)
+        # no population: nothing to shrink towards, so no number (the pull of the Beta(a, b)
+        # prior is not pooling, and reading it as such misleads)
+        return np.full(self.data_.n_groups, np.nan)
 
 
 class CompletePooling(_Conjugate):

@@ -17,7 +17,7 @@ import pandas as pd
 
 from .analysis.draws import group_draws
 from .analysis.predictions import default_seed, predict
-from .analysis.ranks import rank_summary, ranks_table
+from .analysis.ranks import informative_rank_summary, ranks_table
 from .io.inputs import LoadedData
 from .io.runfolder import FolderContents
 from .models import attr
@@ -93,7 +93,8 @@ class _Follow:
         better = s["better"] if better is None else _check("better", better)
         level = s["level"] if level is None else _check("level", level)
         draws = group_draws(self.idata, self.estimates, closed=self._closed())
-        summary = rank_summary(draws.theta, better=better, top=top, level=level)
+        summary = informative_rank_summary(draws.theta, draws.trials, better=better, top=top,
+                                           level=level)
         return ranks_table(draws.names, summary)
 
     def predict(self, trials: int, level: float | None = None,

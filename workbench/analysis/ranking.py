@@ -23,7 +23,7 @@ from ..options import FIT_OPTIONS, RANK_NAMES
 from .decisions import trials_needed_table
 from .draws import GroupDraws
 from .funnel import funnel_tables
-from .ranks import pairwise_groups, pairwise_table, rank_summary, ranks_table
+from .ranks import informative_rank_summary, pairwise_groups, pairwise_table, ranks_table
 from .targets import target_tables
 
 DEFAULT_PAIRWISE = 10
@@ -84,7 +84,9 @@ class Ranking:
 def compute(inp: GroupDraws, opts: RankOptions) -> Ranking:
     """Ranks, target flags, pairwise, funnel and (with a target) trials still needed."""
     started = time.perf_counter()
-    summary = rank_summary(inp.theta, better=opts.better, top=opts.top, level=opts.level)
+    summary = informative_rank_summary(
+        inp.theta, inp.trials, better=opts.better, top=opts.top, level=opts.level
+    )
     ranks = ranks_table(inp.names, summary)
     columns = pd.DataFrame(
         {
@@ -99,20 +101,22 @@ def compute(inp: GroupDraws, opts: RankOptions) -> Ranking:
     needed_doc: dict | str = "not computed: no target was given"
     if opts.target is not None:
         target_cols, targets = target_tables(
-            inp.names, inp.prob_above(opts.target), opts.target, opts.fdr
+            inp.names, inp.prob_above(opts.target), opts.target, opts.fdr,
+            better=opts.better, trials=inp.trials,
         )
         columns = columns.merge(target_cols, on="group", how="left")
         needed, needed_doc = trials_needed_table(
             inp, opts.target, chance=opts.settle_chance, max_trials=opts.max_trials
         )
         tables["trials_needed"] = needed
-    if inp.n_groups >= 2:
+    if summary.ranked >= 2:
+        informative = inp.trials > 0
         index, chosen = pairwise_groups(
             inp.names, inp.posterior_mean, compare_groups=opts.compare_groups,
-            better=opts.better, top=opts.pairwise_top)
+            better=opts.better, top=opts.pairwise_top, among=informative)
         tables["pairwise"] = pairwise_table(inp.theta, inp.names, index, opts.better)
     else:
-        chosen = "none: fewer than two groups"
+        chosen = "none: fewer than two groups with trials"
         tables["pairwise"] = pd.DataFrame(columns=["group_a", "group_b", "prob_a_better"])
     total = float(inp.trials.sum())
     if opts.target is not None:
@@ -129,6 +133,8 @@ def compute(inp: GroupDraws, opts: RankOptions) -> Ranking:
         "groups": int(inp.n_groups),
         "draws": int(inp.n_draws),
         "rank_passes": summary.passes,
+        "ranked_groups": int(summary.ranked),
+        "ranking_note": summary.note,
         "ties": "a tied block at positions lo..hi shares the average rank; P(best k) gives each"
         " member the block's share of positions <= k",
         "pairwise_groups": chosen,

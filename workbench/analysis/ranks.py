@@ -98,6 +98,10 @@ class RankSummary:
     k: int
     passes: int
     seconds: float
+    #: groups given a rank: those with trials (the others' entries are NaN, "no data")
+    ranked: int = 0
+    #: why nothing or not every group was ranked ("" when every group was)
+    note: str = ""
 
 
 def _target_counts(probs: np.ndarray, s: int) -> np.ndarray:
@@ -207,7 +211,46 @@ def rank_summary(
         k=k,
         passes=done_passes,
         seconds=time.perf_counter() - started,
+        ranked=g,
     )
+
+
+#: fewest groups with trials that make a ranking
+MIN_RANKED = 2
+
+
+def informative_rank_summary(
+    theta: np.ndarray, trials: np.ndarray, *, better: str = "higher", top: int = 5,
+    level: float = 0.95, **budgets,
+) -> RankSummary:
+    """:func:`rank_summary` over the groups with trials only; the others get NaN ("no data").
+
+    A group with no trials has no data of its own: its draws are the population's, so a rank
+    for it would describe the population, not the group. With fewer than
+    :data:`MIN_RANKED` groups with trials nothing is ranked (every entry NaN) and ``note``
+    says why.
+    """
+    trials = np.asarray(trials)
+    keep = np.flatnonzero(trials > 0)
+    g = theta.shape[1]
+    empty = np.full(g, np.nan)
+    if len(keep) < MIN_RANKED:
+        return RankSummary(empty, empty.copy(), empty.copy(), empty.copy(), empty.copy(),
+                           k=0, passes=0, seconds=0.0, ranked=0,
+                           note=f"not ranked: {len(keep)} of {g} group(s) have trials;"
+                           f" a ranking needs at least {MIN_RANKED}")
+    part = theta if len(keep) == g else theta[:, keep]
+    got = rank_summary(part, better=better, top=top, level=level, **budgets)
+    got.ranked = len(keep)
+    if len(keep) == g:
+        return got
+    for name in ("rank_median", "rank_lower", "rank_upper", "prob_best_k", "prob_worst_k"):
+        full = empty.copy()
+        full[keep] = getattr(got, name)
+        setattr(got, name, full)
+    got.note = (f"{g - len(keep)} group(s) with no trials not ranked (no data); ranks are among"
+                f" the {len(keep)} groups with trials")
+    return got
 
 
 def ranks_table(names: np.ndarray, summary: RankSummary) -> pd.DataFrame:
@@ -223,7 +266,7 @@ def ranks_table(names: np.ndarray, summary: RankSummary) -> pd.DataFrame:
         }
     )
     return table.sort_values(
-        ["rank_median", "rank_lower", "rank_upper"], kind="stable"
+        ["rank_median", "rank_lower", "rank_upper"], kind="stable", na_position="last"
     ).reset_index(drop=True)
 
 
@@ -249,9 +292,11 @@ def pairwise_table(
 
 
 def pairwise_groups(
-    names: np.ndarray, posterior_mean: np.ndarray, *, compare_groups, better: str, top: int
+    names: np.ndarray, posterior_mean: np.ndarray, *, compare_groups, better: str, top: int,
+    among: np.ndarray | None = None,
 ) -> tuple[np.ndarray, str]:
-    """Indices of the groups to compare: the named ones, or the best ``top`` by mean."""
+    """Indices of the groups to compare: the named ones, or the best ``top`` by mean (of the
+    groups in the mask ``among``, where given: those with trials)."""
     names = np.asarray(names).astype(str)
     if compare_groups:
         where = {n: i for i, n in enumerate(names)}
@@ -265,4 +310,6 @@ def pairwise_groups(
             )
         return np.array([where[c] for c in compare_groups]), "named"
     order = np.argsort(-posterior_mean if better == "higher" else posterior_mean, kind="stable")
-    return order[: min(top, len(names))], f"best {top} by posterior mean"
+    if among is not None:
+        order = order[np.asarray(among)[order]]
+    return order[: min(top, len(order))], f"best {top} by posterior mean"

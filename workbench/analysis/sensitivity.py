@@ -127,7 +127,8 @@ def conclusions(estimator, *, level: float, target: float | None, fdr: float, to
         "in_top": in_top,
     })
     if target is not None:
-        flags, _ = target_tables(draws.names, draws.prob_above(target), target, fdr)
+        flags, _ = target_tables(draws.names, draws.prob_above(target), target, fdr,
+                                 better=better, trials=draws.trials)
         table["prob_above_target"] = flags["prob_above_target"].to_numpy()
         table["target_flag"] = flags["target_flag"].to_numpy()
     return table

@@ -51,6 +51,7 @@ def format_fit(run, *, rows: int = 5) -> str:
             f"  {row.quantity:<18} {row.mean:10.4g}   {level:.0%} interval"
             f" [{row.lower:.4g}, {row.upper:.4g}]"
         )
+    lines += format_parents(run.tables.get("parents"), level, rows=rows)
     est = run.estimates.sort_values("posterior_mean", ascending=False)
     show = est if len(est) <= 2 * rows else pd.concat([est.head(rows), est.tail(rows)])
     lines.append(
@@ -76,6 +77,26 @@ def format_fit(run, *, rows: int = 5) -> str:
     if ranking:
         lines.append(format_ranking(run.tables, ranking, run.documents.get("targets")))
     return "\n".join(lines)
+
+
+def format_parents(parents, level: float, *, rows: int = 5) -> list[str]:
+    """The nested model's parents: effect on the log-odds and the typical group's rate."""
+    if parents is None or not len(parents):
+        return []
+    table = parents.sort_values("effect_mean", ascending=False)
+    many = len(table) > 2 * rows
+    shown = pd.concat([table.head(rows), table.tail(rows)]) if many else table
+    width = min(max(len(str(p)) for p in shown["parent"]), 28)
+    lines = [f"parents ({len(table)}{', top and bottom' if many else ''}): effect on the"
+             f" log-odds [{level:.0%}], typical group's rate [{level:.0%}]"]
+    for r in shown.itertuples():
+        lines.append(
+            f"  {str(r.parent)[:width]:<{width}}  {r.groups:>5} groups  effect"
+            f" {r.effect_mean:+7.3f} [{r.effect_lower:+.3f}, {r.effect_upper:+.3f}]  rate"
+            f" {r.typical_rate_median:.3f} [{r.typical_rate_lower:.3f},"
+            f" {r.typical_rate_upper:.3f}]"
+        )
+    return lines
 
 
 def format_diagnostics(d) -> str:
@@ -117,24 +138,32 @@ def format_ranking(
         return ""
     k = record["top_k"]
     level = record["level"]
-    lines = [
-        f"ranks: {record['groups']} groups, {record['better']} rate is better, rank 1 = best,"
-        f" {record['draws']} draws; median {level:.0%} rank interval spans"
-        f" {float((ranks['rank_upper'] - ranks['rank_lower']).median()):.0f} places"
-    ]
-    for r in ranks.head(rows).itertuples():
-        lines.append(
-            f"  {str(r.group)[:28]:<28} rank {r.rank_median:g} [{r.rank_lower:g}, {r.rank_upper:g}]"
-            f"  P(best {k}) {r.prob_best_k:.2f}"
-        )
-    sure = int((ranks["prob_best_k"] >= 0.9).sum())
-    lines.append(f"  {sure} group(s) with P(in best {k}) >= 0.9")
+    ranked = ranks.dropna(subset=["rank_median"])
+    note = record.get("ranking_note") or ""
+    if ranked.empty:
+        lines = [f"ranks: none: {note or 'no group has a rank'}"]
+    else:
+        lines = [
+            f"ranks: {len(ranked)} groups, {record['better']} rate is better, rank 1 = best,"
+            f" {record['draws']} draws; median {level:.0%} rank interval spans"
+            f" {float((ranked['rank_upper'] - ranked['rank_lower']).median()):.0f} places"
+        ]
+        for r in ranked.head(rows).itertuples():
+            lines.append(
+                f"  {str(r.group)[:28]:<28} rank {r.rank_median:g}"
+                f" [{r.rank_lower:g}, {r.rank_upper:g}]  P(best {k}) {r.prob_best_k:.2f}"
+            )
+        sure = int((ranked["prob_best_k"] >= 0.9).sum())
+        lines.append(f"  {sure} group(s) with P(in best {k}) >= 0.9")
+        if note:
+            lines.append(f"  {note}")
     if targets is not None:
         ab, be = targets["above"], targets["below"]
+        words = targets.get("flag_words") or {"above": "above", "below": "below"}
         lines.append(
-            f"target {targets['target']:g}: {ab['flagged']} flagged above (expected false share"
-            f" {ab['expected_false_share']:.3f}), {be['flagged']} below"
-            f" ({be['expected_false_share']:.3f}); level {targets['fdr_level']:g}"
+            f"target {targets['target']:g}: {ab['flagged']} flagged {words['above']}, expected"
+            f" false share {ab['expected_false_share']:.3f}; {be['flagged']} {words['below']},"
+            f" {be['expected_false_share']:.3f}; level {targets['fdr_level']:g}"
         )
     funnel = tables.get("funnel")
     if funnel is not None:

@@ -31,7 +31,7 @@ from ._style import (
     text_label,
 )
 from .checks import plot_loo_pit, plot_predictive
-from .estimates import plot_intervals, plot_shrinkage
+from .estimates import plot_intervals, plot_parents, plot_shrinkage
 from .population import parameter_names, plot_mixing, plot_population
 from .ranking import plot_funnel, plot_ranks
 
@@ -46,6 +46,7 @@ __all__ = [
     "plot_intervals",
     "plot_loo_pit",
     "plot_mixing",
+    "plot_parents",
     "plot_population",
     "plot_predictive",
     "plot_ranks",

@@ -11,9 +11,9 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 from matplotlib.axes import Axes
-from matplotlib.collections import LineCollection
+from matplotlib.collections import LineCollection, PathCollection
 from matplotlib.figure import Figure
-from matplotlib.transforms import ScaledTranslation
+from matplotlib.transforms import Bbox, ScaledTranslation
 
 #: The workbench palette: chosen so every pair stays apart (CIELAB distance >= 18) under
 #: simulated protan, deutan and tritan colour vision; meaning is also carried by marker
@@ -27,6 +27,10 @@ PALETTE = {
     "mint": "#9fd6c6",  # light fill
     "mist": "#e6ebef",  # lightest fill
 }
+
+#: the word a title uses for a palette colour (tests hold titles to the colours drawn)
+COLOUR_WORDS = {"harbour": "blue", "ochre": "orange", "mulberry": "red", "pewter": "grey",
+                "mint": "pale green"}
 
 #: chain colours for the mixing views
 CHAIN_COLOURS = ("#1f6aa5", "#e39b2d", "#a8325e", "#5a9e8f", "#7c8893", "#1d2833")
@@ -162,68 +166,110 @@ def _legend_below(ax: Axes, handles: list | None = None, *, ncols: int = 4) -> N
     )
 
 
+#: label offsets tried, in points from the edge of a point's marker, nearest first
+_LABEL_GAPS = (3.0, 9.0, 17.0, 28.0, 42.0)
+#: directions tried (dx, dy), right and left of the point first
+_LABEL_DIRECTIONS = ((1, 0), (-1, 0), (1, -1), (1, 1), (-1, 1), (-1, -1), (0, -1), (0, 1))
+
+
+def _renderer(fig: Figure):
+    """The figure laid out as it will be drawn, and a renderer to measure text with."""
+    fig.draw_without_rendering()
+    return fig._get_renderer()
+
+
+def _markers(ax: Axes) -> tuple[np.ndarray, np.ndarray]:
+    """Display centres and radii (pixels) of every scatter marker on the axes."""
+    centres, radii = [np.empty((0, 2))], [np.empty(0)]
+    scale = ax.get_figure().dpi / 72.0
+    for coll in ax.collections:
+        if not isinstance(coll, PathCollection) or not len(coll.get_offsets()):
+            continue
+        offsets = np.asarray(coll.get_offsets(), dtype=float)
+        sizes = np.broadcast_to(np.asarray(coll.get_sizes(), dtype=float), len(offsets))
+        centres.append(ax.transData.transform(offsets))
+        radii.append(np.sqrt(sizes) / 2 * scale)
+    return np.concatenate(centres), np.concatenate(radii)
+
+
+def _covers(box: Bbox, centres: np.ndarray, radii: np.ndarray) -> np.ndarray:
+    """Which markers (discs) the box touches."""
+    nearest_x = np.clip(centres[:, 0], box.x0, box.x1)
+    nearest_y = np.clip(centres[:, 1], box.y0, box.y1)
+    return np.hypot(centres[:, 0] - nearest_x, centres[:, 1] - nearest_y) < radii
+
+
 def _spread_labels(
     ax: Axes,
     xs: Sequence[float],
     ys: Sequence[float],
     names: Sequence,
     *,
-    gap: float = 9.5,
     flip: bool = True,
 ) -> None:
-    """Name points; labels that would collide are spread apart vertically around their
-    points (``gap`` points apart) with a thin leader line. With ``flip``, points in the right
-    quarter of the axes are named on their left; the others always on their right."""
+    """Name points where the names cover no marker, no other name, no legend or note and stay
+    inside the axes: each name tries places around its point, nearest first (right, left,
+    then the diagonals), and takes the first free one (else the one covering least), with a
+    thin leader line when it sits away from its point. Call after the limits, the legend and
+    the notes are set. ``flip`` is kept for callers; every side is tried."""
     if not len(xs):
         return
     fig = ax.get_figure()
-    height_pt = ax.get_position().height * fig.get_figheight() * 72
-    to_axes = ax.transScale + ax.transLimits  # data -> axes fraction, before layout
-    where = to_axes.transform(np.column_stack([np.asarray(xs, float), np.asarray(ys, float)]))
-    at = where[:, 1] * height_pt
-    left = (where[:, 0] > 0.75) & flip
-    for side in (False, True):
-        chosen = np.flatnonzero(left == side)
-        if not chosen.size:
-            continue
-        chosen = chosen[np.argsort(at[chosen], kind="stable")]
-        placed = _stack(at[chosen], gap)
-        for i, y in zip(chosen, placed, strict=True):
-            shift = y - at[i]
-            arrow = {"arrowstyle": "-", "color": "#9aa6b0", "linewidth": 0.5}
-            ax.annotate(
-                text_label(names[i]),
-                (xs[i], ys[i]),
-                xytext=(-7 if side else 7, shift),
-                textcoords="offset points",
-                fontsize=7.5,
-                color=PALETTE["ink"],
-                ha="right" if side else "left",
-                va="center",
-                zorder=4,
-                arrowprops=arrow if abs(shift) > 5 else None,
-                # a pale backing so reference lines never run through a name
-                bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.85},
-            )
-
-
-def _stack(wanted: np.ndarray, gap: float) -> np.ndarray:
-    """Positions at least ``gap`` apart, each run of crowded labels centred on its points."""
-    clusters: list[list[float]] = []  # each: the wanted positions of its members, in order
-    for y in wanted:
-        clusters.append([float(y)])
-        while len(clusters) > 1:
-            low, high = clusters[-2], clusters[-1]
-            low_top = np.mean(low) + (len(low) - 1) * gap / 2
-            high_bottom = np.mean(high) - (len(high) - 1) * gap / 2
-            if high_bottom - low_top >= gap:
+    renderer = _renderer(fig)
+    frame = ax.get_window_extent(renderer)
+    scale = fig.dpi / 72.0
+    centres, radii = _markers(ax)
+    taken = [t.get_window_extent(renderer) for t in ax.texts if t.get_text()]
+    legend = ax.get_legend()
+    if legend is not None:
+        taken.append(legend.get_window_extent(renderer))
+    where = ax.transData.transform(np.column_stack([np.asarray(xs, float), np.asarray(ys, float)]))
+    for i, (px, py) in enumerate(where):
+        probe = ax.text(0, 0, text_label(names[i]), fontsize=7.5)
+        width, height = (lambda b: (b.width, b.height))(probe.get_window_extent(renderer))
+        probe.remove()
+        own = np.hypot(centres[:, 0] - px, centres[:, 1] - py) < 0.5
+        mine = float(radii[own].max()) if own.any() else 2.0
+        best, fewest = None, None
+        for gap in _LABEL_GAPS:
+            for dx, dy in _LABEL_DIRECTIONS:
+                reach = mine + gap * scale
+                cx, cy = px + dx * reach, py + dy * reach
+                x0 = cx if dx > 0 else cx - width if dx < 0 else cx - width / 2
+                y0 = cy if dy > 0 else cy - height if dy < 0 else cy - height / 2
+                box = Bbox.from_bounds(x0, y0, width, height)
+                inside = frame.containsx(box.x0) and frame.containsx(box.x1) and \
+                    frame.containsy(box.y0) and frame.containsy(box.y1)
+                clash = int(_covers(box, centres, radii).sum()) + sum(
+                    box.overlaps(t) for t in taken) + (0 if inside else 100)
+                if fewest is None or clash < fewest:
+                    best, fewest = (box, dx, dy, gap), clash
+                if clash == 0:
+                    break
+            if fewest == 0:
                 break
-            clusters[-2:] = [low + high]
-    out = []
-    for members in clusters:
-        centre = np.mean(members)
-        out += [centre + (k - (len(members) - 1) / 2) * gap for k in range(len(members))]
-    return np.asarray(out)
+        box, dx, dy, gap = best
+        taken.append(box)
+        ha = "left" if dx > 0 else "right" if dx < 0 else "center"
+        va = "bottom" if dy > 0 else "top" if dy < 0 else "center"
+        anchor = ((box.x0 if dx > 0 else box.x1 if dx < 0 else (box.x0 + box.x1) / 2),
+                  (box.y0 if dy > 0 else box.y1 if dy < 0 else (box.y0 + box.y1) / 2))
+        arrow = {"arrowstyle": "-", "color": "#9aa6b0", "linewidth": 0.5}
+        label = ax.annotate(
+            text_label(names[i]),
+            (xs[i], ys[i]),
+            xytext=((anchor[0] - px) / scale, (anchor[1] - py) / scale),
+            textcoords="offset points",
+            fontsize=7.5,
+            color=PALETTE["ink"],
+            ha=ha,
+            va=va,
+            zorder=4,
+            arrowprops=arrow if gap > _LABEL_GAPS[0] else None,
+            # a pale backing so reference lines never run through a name
+            bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.85},
+        )
+        label.set_in_layout(False)  # names never move the layout they were placed in
 
 
 def _line_width(n: int) -> float:
@@ -268,6 +314,15 @@ def _population_row(
     if rows.empty:
         return None
     return rows.iloc[0].to_dict()
+
+
+def _rate_axis(ax: Axes, which: str, low: float, high: float, pad: float) -> None:
+    """A rate axis from ``low - pad`` to ``high + pad``, reaching past 0 and 1 by at most the
+    pad so markers on 0 or 1 lie inside the frame, with ticks only inside [0, 1]."""
+    low, high = max(-pad, low - pad), min(1.0 + pad, high + pad)
+    axis, setter = (ax.xaxis, ax.set_xlim) if which == "x" else (ax.yaxis, ax.set_ylim)
+    setter(low, high)
+    axis.set_ticks([t for t in axis.get_major_locator().tick_values(low, high) if 0 <= t <= 1])
 
 
 def figure_of(artist: Axes | Figure) -> Figure:

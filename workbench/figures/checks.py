@@ -9,8 +9,10 @@ import numpy as np
 import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from ._style import (
+    COLOUR_WORDS,
     PALETTE,
     _apply_style,
     _count,
@@ -82,7 +84,8 @@ def plot_predictive(
         not_computed("posterior predictive checks", ax=axes.ravel()[0])
     _suptitle(
         fig,
-        "Posterior predictive checks: replicated data (blue) against the observed data (red line)",
+        f"Posterior predictive checks: replicated data ({COLOUR_WORDS['harbour']}) against the"
+        f" observed data ({COLOUR_WORDS['mulberry']} line)",
     )
     return fig
 
@@ -107,13 +110,27 @@ def _statistic_panel(ax: Axes, part: pd.DataFrame, value: str, observed) -> None
         ax.set_xlabel("observed (per draw)", fontsize=7.5)
         ax.set_ylabel("replicated", fontsize=7.5)
         return
-    ax.hist(
-        rep, bins=_bins(rep), color=PALETTE["mint"], edgecolor=PALETTE["harbour"], linewidth=0.4
-    )
+    bins = _bins(rep)
+    ax.hist(rep, bins=bins, color=PALETTE["harbour"], alpha=0.55, edgecolor=PALETTE["harbour"],
+            linewidth=0.4)
     if observed is not None:
         ax.axvline(float(observed), color=PALETTE["mulberry"], linewidth=2.0)
+    if not isinstance(bins, int):  # a count: whole-number ticks, none below the smallest
+        _count_axis(ax, rep, observed)
     ax.set_yticks([])
     ax.grid(False, axis="y")
+
+
+def _count_axis(ax: Axes, values: np.ndarray, observed) -> None:
+    """A count statistic's axis: every bar whole, ticks on whole numbers, never below 0."""
+    finite = values[np.isfinite(values)]
+    low = float(finite.min())
+    high = float(finite.max())
+    if observed is not None and np.isfinite(float(observed)):
+        low, high = min(low, float(observed)), max(high, float(observed))
+    ax.set_xlim(low - 0.6, high + 0.6)
+    ticks = MaxNLocator(integer=True, min_n_ticks=1).tick_values(low, high)
+    ax.set_xticks([t for t in ticks if low <= t <= high and (t >= 0 or low < 0)])
 
 
 def _bins(values: np.ndarray) -> int | np.ndarray:

@@ -7,6 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 from matplotlib.axes import Axes
+from matplotlib.transforms import ScaledTranslation
 
 from ._style import (
     PALETTE,
@@ -21,6 +22,7 @@ from ._style import (
     _line_width,
     _new_axes,
     _population_row,
+    _rate_axis,
     _require,
     _row_labels,
     _shown_rows,
@@ -73,7 +75,14 @@ def plot_shrinkage(
     _population_line(ax, population)
     _size_scatter(ax, drawn)
     _square_limits(ax, drawn)
-    if n:
+    ax.set_xlabel("observed rate (successes / trials)")
+    ax.set_ylabel("estimate (posterior mean)")
+    _title(ax, f"Shrinkage: observed rate \u2192 estimate ({_count(n)} groups)")
+    missing = len(estimates) - n
+    if missing:
+        _corner_note(ax, f"{_count(missing)} group(s) with no trials not drawn", top=False)
+    ax.legend(loc="upper left", fontsize=7.5, scatterpoints=1, labelspacing=0.9, borderaxespad=0.6)
+    if n:  # named last: the names keep clear of the markers, the legend and the note
         order = drawn.sort_values(["posterior_mean", "group"], ascending=[False, True])
         named = order if n <= 12 else pd.concat([order.head(label), order.tail(label)])
         _spread_labels(
@@ -82,13 +91,6 @@ def plot_shrinkage(
             named["posterior_mean"].to_numpy(),
             named["group"].to_list(),
         )
-    ax.set_xlabel("observed rate (successes / trials)")
-    ax.set_ylabel("estimate (posterior mean)")
-    _title(ax, f"Shrinkage: observed rate \u2192 estimate ({_count(n)} groups)")
-    missing = len(estimates) - n
-    if missing:
-        _corner_note(ax, f"{_count(missing)} group(s) with no trials not drawn", top=False)
-    ax.legend(loc="upper left", fontsize=7.5, scatterpoints=1, labelspacing=0.9, borderaxespad=0.6)
     return ax
 
 
@@ -122,6 +124,7 @@ def _size_scatter(ax: Axes, drawn: pd.DataFrame) -> None:
         linewidths=0.6,
         zorder=3,
         rasterized=n > 2000,
+        clip_on=False,  # a rate of 0 or 1 sits on the frame: drawn whole, never half-cut
     )
     for ref in _size_steps(biggest):
         ax.scatter(
@@ -142,8 +145,8 @@ def _square_limits(ax: Axes, drawn: pd.DataFrame) -> None:
     else:
         lo, hi = 0.0, 1.0
     pad = 0.04 * max(hi - lo, 0.05)
-    ax.set_xlim(max(0.0, lo - pad), min(1.0, hi + pad))
-    ax.set_ylim(max(0.0, lo - pad), min(1.0, hi + pad))
+    _rate_axis(ax, "x", lo, hi, pad)
+    _rate_axis(ax, "y", lo, hi, pad)
 
 
 def _size_steps(biggest: float) -> list[float]:
@@ -205,7 +208,12 @@ def plot_intervals(
             colour=PALETTE["harbour"],
             alpha=min(0.5, 30 / len(mid)),
         )
-    _labelled_intervals(ax, table, pos, idx, level=level)
+    span = [float(np.nanmin(lower)), float(np.nanmax(upper))] if n else [0.0, 1.0]
+    if target is not None:
+        span = [min(span[0], target), max(span[1], target)]
+    limits = (max(0.0, span[0] - 0.02), min(1.0, span[1] + 0.02))
+    ax.set_xlim(*limits)
+    _labelled_intervals(ax, table, pos, idx, level=level, limits=limits)
     if target is not None:
         ax.axvline(
             target,
@@ -218,10 +226,6 @@ def plot_intervals(
     _row_labels(ax, pos, table["group"].astype(str).to_list(), idx)
     _band_note(ax, band, n - 2 * show)
     ax.set_ylim(pos[-1] + 0.8 if n else 1, -0.8)
-    ax.set_xlim(
-        max(0.0, float(np.nanmin(lower)) - 0.02) if n else 0,
-        min(1.0, float(np.nanmax(upper)) + 0.02) if n else 1,
-    )
     ax.set_xlabel(f"rate: estimate and {level:.0%} interval" if level else "rate")
     shown = "all" if band is None else f"highest and lowest {show} of"
     _title(ax, f"Estimates, ordered ({shown} {_count(n)} groups)")
@@ -230,9 +234,11 @@ def plot_intervals(
 
 
 def _labelled_intervals(
-    ax: Axes, table: pd.DataFrame, pos: np.ndarray, idx: np.ndarray, *, level: float | None
+    ax: Axes, table: pd.DataFrame, pos: np.ndarray, idx: np.ndarray, *, level: float | None,
+    limits: tuple[float, float],
 ) -> None:
-    """Interval bars, estimate dots and observed-rate ticks of the labelled rows."""
+    """Interval bars, estimate dots and observed-rate ticks of the labelled rows; an observed
+    rate beyond the axis is drawn on its edge as an arrowhead pointing out, with its value."""
     ax.hlines(
         pos[idx],
         table["lower"].to_numpy(dtype=float)[idx],
@@ -250,17 +256,101 @@ def _labelled_intervals(
         label="estimate (posterior mean)",
         zorder=3,
     )
-    if "observed_rate" in table.columns:
-        ax.plot(
-            table["observed_rate"].to_numpy(dtype=float)[idx],
-            pos[idx],
-            "|",
-            color=PALETTE["mulberry"],
-            markersize=7,
-            markeredgewidth=1.4,
-            label="observed rate",
-            zorder=3,
-        )
+    if "observed_rate" not in table.columns:
+        return
+    observed = table["observed_rate"].to_numpy(dtype=float)[idx]
+    rows = pos[idx]
+    low, high = limits
+    inside = (observed >= low) & (observed <= high)
+    ax.plot(
+        observed[inside],
+        rows[inside],
+        "|",
+        color=PALETTE["mulberry"],
+        markersize=7,
+        markeredgewidth=1.4,
+        label="observed rate",
+        zorder=3,
+        clip_on=False,
+    )
+    named = False
+    for beyond, edge, marker, ha, sign in ((observed < low, low, "<", "left", 1),
+                                           (observed > high, high, ">", "right", -1)):
+        if not beyond.any():
+            continue
+        # the arrowhead's tip on the frame, the arrowhead and the value inside it
+        inward = ax.transData + ScaledTranslation(sign * 3.5 / 72, 0,
+                                                  ax.get_figure().dpi_scale_trans)
+        ax.plot(np.full(beyond.sum(), edge), rows[beyond], marker, color=PALETTE["mulberry"],
+                markersize=5, zorder=4, clip_on=False, transform=inward,
+                label=None if named else "observed rate off the axis (value beside)")
+        named = True
+        for value, row in zip(observed[beyond], rows[beyond], strict=True):
+            ax.annotate(f"{value:.2g}", (edge, row), xytext=(sign * 8, 0),
+                        textcoords="offset points", ha=ha, va="center", fontsize=6.5,
+                        color=PALETTE["mulberry"], zorder=4)
 
 
-__all__ = ["plot_intervals", "plot_shrinkage"]
+# -- parents (nested model) ---------------------------------------------------------------------
+
+
+def plot_parents(parents: pd.DataFrame, *, level: float | None = None, ax: Axes | None = None,
+                 show: int = 15, every: int = 70) -> Axes:
+    """Each parent's effect on the log-odds with its interval, largest first (nested model).
+
+    0 is the population; a parent right of it lifts its groups' rates. The rate of the
+    parent's typical group is printed beside each row.
+
+    Parameters
+    ----------
+    parents : DataFrame
+        The parents table: parent, groups, effect_mean, effect_lower, effect_upper and
+        typical_rate_median if present.
+    level : float, optional
+        The interval mass, for the axis label.
+    ax : Axes, optional
+    show, every : int
+        As for :func:`plot_intervals`.
+    """
+    _require(parents, ["parent", "effect_mean", "effect_lower", "effect_upper"], "plot_parents")
+    table = parents.sort_values(["effect_mean", "parent"], ascending=[False, True])
+    n = len(table)
+    pos, band = row_positions(n, show, every=every)
+    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
+    _apply_style(ax)
+    lower = table["effect_lower"].to_numpy(dtype=float)
+    upper = table["effect_upper"].to_numpy(dtype=float)
+    mean = table["effect_mean"].to_numpy(dtype=float)
+    idx = _labelled(n, band, show)
+    if band is not None:
+        _draw_band(ax, lower, upper, mean, pos, np.arange(show, n - show),
+                   colour=PALETTE["harbour"], alpha=min(0.5, 30 / max(n - 2 * show, 1)))
+    ax.axvline(0.0, color=PALETTE["pewter"], linestyle=(0, (4, 3)), linewidth=1.0,
+               label="0: the population", zorder=1)
+    ax.hlines(pos[idx], lower[idx], upper[idx], color=PALETTE["harbour"],
+              linewidth=_line_width(len(idx)), label=f"{level:.0%} interval" if level else
+              "interval")
+    ax.plot(mean[idx], pos[idx], "o", color=PALETTE["ink"], markersize=4,
+            label="effect (posterior mean)", zorder=3)
+    if "typical_rate_median" in table.columns:
+        rate = table["typical_rate_median"].to_numpy(dtype=float)
+        for i in idx:
+            ax.text(1.01, pos[i], f"{rate[i]:.3f}", transform=ax.get_yaxis_transform(),
+                    va="center", ha="left", fontsize=7.5, color=PALETTE["ink"])
+        ax.text(1.01, -1.2, "typical\nrate", transform=ax.get_yaxis_transform(),
+                va="bottom", ha="left", fontsize=7, color="#4a5762")
+    _row_labels(ax, pos, table["parent"].astype(str).to_list(), idx)
+    _band_note(ax, band, n - 2 * show, "parents")
+    ax.set_ylim(pos[-1] + 0.8 if n else 1, -0.8)
+    if n:
+        reach = max(abs(float(np.nanmin(lower))), abs(float(np.nanmax(upper))), 0.05) * 1.08
+        ax.set_xlim(-reach, reach)
+    ax.set_xlabel("parent effect on the log-odds" + (f": mean and {level:.0%} interval"
+                                                    if level else ""))
+    shown = "all" if band is None else f"highest and lowest {show} of"
+    _title(ax, f"Parents, ordered by effect ({shown} {_count(n)} parents)")
+    _legend_below(ax, ncols=3)
+    return ax
+
+
+__all__ = ["plot_intervals", "plot_parents", "plot_shrinkage"]

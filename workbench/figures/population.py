@@ -19,6 +19,7 @@ from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
 from ._style import (
     CHAIN_COLOURS,
+    COLOUR_WORDS,
     PALETTE,
     _apply_style,
     _population_row,
@@ -108,7 +109,8 @@ def plot_population(
         ax.set_axis_off()
     if not names:
         not_computed("population parameters", ax=axes[0])
-    _suptitle(fig, "Population parameters: posterior draws (bars), mean and interval (orange)")
+    _suptitle(fig, "Population parameters: posterior draws (bars), mean and interval"
+                   f" ({COLOUR_WORDS['ochre']})")
     return fig
 
 

@@ -19,6 +19,7 @@ from ._style import (
     _legend_below,
     _line_width,
     _new_axes,
+    _rate_axis,
     _require,
     _row_labels,
     _shown_rows,
@@ -53,7 +54,9 @@ def plot_funnel(
         the funnel's edges; without it, the per-group limits are joined instead.
     ax : Axes, optional
     label : int, default=4
-        Name at most this many groups outside the 99.8% limits (the largest ones first).
+        Name at most this many groups outside the 99.8% limits, the most extreme first: by
+        how far the observed rate lies from the benchmark, in units of the distance from the
+        benchmark to the limit it crossed.
     benchmark_name : str, default="benchmark"
         What the benchmark is (for the legend), e.g. "target" or "pooled rate".
     """
@@ -85,27 +88,42 @@ def plot_funnel(
     ax.set_xscale("log")
     ax.set_xlabel("trials (log scale)")
     ax.set_ylabel("observed rate")
-    flagged = table[out998].sort_values(["trials", "group"], ascending=[False, True]).head(label)
+    flagged = _most_extreme(table[out998], limits_of=funnel, label=label)
     if n:
         lo = min(float(table["observed_rate"].min()), float(np.nanmin(lines[("998", "lower")])))
         hi = max(float(table["observed_rate"].max()), float(np.nanmax(lines[("998", "upper")])))
-        ax.set_ylim(max(0.0, lo - 0.02), min(1.0, hi + 0.02))
-        room = 4.0 if len(flagged) else 1.3  # empty space on the right for the names
-        left = max(0.8, float(x.min()) * 0.9 if len(x) else 0.8)
-        ax.set_xlim(left, float(table["trials"].max()) * room)
+        _rate_axis(ax, "y", lo, hi, 0.02)
+        # fitted to the groups: from just below the smallest to just past the largest
+        small, large = float(table["trials"].min()), float(table["trials"].max())
+        ax.set_xlim(max(0.8, small * 0.8), large * 1.25)
+    _title(ax, f"Funnel plot: observed rate by trials ({_count(n)} groups)")
+    dropped = len(funnel) - n
+    if dropped:
+        _corner_note(ax, f"{_count(dropped)} group(s) with no trials not drawn", top=True)
     _spread_labels(
         ax,
         flagged["trials"].to_numpy(),
         flagged["observed_rate"].to_numpy(),
         flagged["group"].to_list(),
-        flip=False,
     )
-    _title(ax, f"Funnel plot: observed rate by trials ({_count(n)} groups)")
-    dropped = len(funnel) - n
-    if dropped:
-        _corner_note(ax, f"{_count(dropped)} group(s) with no trials not drawn", top=True)
     _legend_below(ax, ncols=3)
     return ax
+
+
+def _most_extreme(outside: pd.DataFrame, *, limits_of: pd.DataFrame, label: int) -> pd.DataFrame:
+    """The ``label`` groups furthest outside, as a multiple of their own limit's distance."""
+    if outside.empty:
+        return outside
+    upper = outside[_limit_column(limits_of, "998", "upper")].to_numpy(dtype=float)
+    lower = outside[_limit_column(limits_of, "998", "lower")].to_numpy(dtype=float)
+    bench = outside["benchmark"].to_numpy(dtype=float)
+    rate = outside["observed_rate"].to_numpy(dtype=float)
+    reach = np.where(rate >= bench, upper - bench, bench - lower)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        beyond = np.where(reach > 0, np.abs(rate - bench) / reach, np.inf)
+    order = outside.assign(_beyond=beyond).sort_values(["_beyond", "group"],
+                                                       ascending=[False, True])
+    return order.head(label).drop(columns="_beyond")
 
 
 def _funnel_edges(ax: Axes, x: np.ndarray, lines: dict) -> None:
@@ -158,6 +176,7 @@ def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
             zorder=3,
             label=f"{text} ({_count(len(part))})",
             rasterized=n > 2000,
+            clip_on=False,  # a rate of 0 or 1 on the frame is drawn whole
         )
     return out998
 
@@ -214,7 +233,8 @@ def plot_ranks(
     if "prob_best_k" in ranks.columns:
         sort_cols.insert(1, "prob_best_k")
         ascending.insert(1, False)
-    table = ranks.sort_values(sort_cols, ascending=ascending)
+    unranked = int(ranks["rank_median"].isna().sum())  # groups with no trials: no data
+    table = ranks.dropna(subset=["rank_median"]).sort_values(sort_cols, ascending=ascending)
     n = len(table)
     if k is None:
         k = int(ranks["k"].iloc[0]) if "k" in ranks.columns and n else 5
@@ -257,6 +277,9 @@ def plot_ranks(
     _legend_below(ax, handles if k else handles[2:], ncols=3)
     shown = "all" if band is None else f"first and last {show} of"
     _title(ax, f"Ranks with their intervals ({shown} {_count(n)} groups)")
+    if unranked:
+        _corner_note(ax, f"{_count(unranked)} group(s) with no trials: no data, not ranked",
+                     top=True)
     return ax
 
 

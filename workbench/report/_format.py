@@ -11,14 +11,21 @@ import numpy as np
 import pandas as pd
 
 
+#: what an empty rank reads (a group with no trials is not ranked)
+NO_DATA = "no data"
+
+
 def _missing(v) -> bool:
     return v is None or (isinstance(v, float) and not math.isfinite(v)) or v is pd.NA
 
 
 def fmt(v, kind: str = "num") -> str:
-    """A value as text: ``rate`` (3 decimals), ``prob``, ``int``, ``rank``, ``num``."""
+    """A value as text: ``rate`` (3 decimals), ``prob``, ``int``, ``rank``, ``num``.
+
+    A missing rank reads "no data": only groups with no trials go unranked.
+    """
     if _missing(v):
-        return ""
+        return NO_DATA if kind == "rank" else ""
     if isinstance(v, bool | np.bool_):
         return "yes" if v else "no"
     if isinstance(v, str):
@@ -28,7 +35,7 @@ def fmt(v, kind: str = "num") -> str:
     except (TypeError, ValueError):
         return str(v)
     if not math.isfinite(x):
-        return ""
+        return NO_DATA if kind == "rank" else ""
     if abs(x) < 1e-12:
         x = 0.0  # rounding noise such as -1.1e-15 reads as zero
     if kind == "int":

@@ -94,6 +94,12 @@ def figure_makers(folder: FolderContents) -> dict[str, Maker]:
             f"Observed rate against estimate for {n} groups, marker area by trials.",
         ),
     }
+    parents = t.get("parents")
+    if parents is not None and len(parents):
+        makers["parents"] = (
+            lambda: figures.plot_parents(parents, level=settings.get("level")),
+            f"Effects of {len(parents)} parents on the log-odds with their intervals.",
+        )
     makers.update(_ranking_makers(folder))
     makers.update(_check_makers(folder))
     if "calibration" in t and "calibration_replicates" in t:
@@ -121,7 +127,7 @@ def _ranking_makers(folder: FolderContents) -> dict[str, Maker]:
     t = folder.tables
     ranking = folder.record.get("ranking") or {}
     makers: dict[str, Maker] = {}
-    if "ranks" in t:
+    if "ranks" in t and t["ranks"]["rank_median"].notna().any():
         makers["ranks"] = (
             lambda: figures.plot_ranks(t["ranks"], k=ranking.get("top_k")),
             "Rank medians and intervals, best placed first.",

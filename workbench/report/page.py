@@ -60,6 +60,8 @@ table.data th.t { text-align: left; }
 .scroll table { margin: 0; }
 tr.flag-above td.flag { color: var(--blue); font-weight: 600; }
 tr.flag-below td.flag { color: var(--ochre); font-weight: 600; }
+tr.flag-better td.flag { color: var(--blue); font-weight: 600; }
+tr.flag-worse td.flag { color: var(--ochre); font-weight: 600; }
 tr.gap td { text-align: center; font-style: italic; color: var(--soft); background: var(--wash); }
 button.sort { font: inherit; font-weight: 600; background: none; border: 0; padding: 0;
   cursor: pointer; color: inherit; text-align: inherit; }
@@ -208,6 +210,10 @@ TEMPLATE = """<!DOCTYPE html>
 <h3>Population</h3>
 {% if population %}{{ data_table(population) }}{% else %}{{ absent("Population parameters", "not in this model") }}{% endif %}
 {{ figure("population", "Posterior draws of the population parameters; the orange band is the interval from " ~ population_file ~ ".") }}
+{% if parents %}<h3>Parents</h3>
+<p class="small">Each parent's effect on the log-odds (0 is the population: a positive effect lifts the rates of its groups) and the rate of its typical group, from {{ parents_file }}.</p>
+{{ figure("parents", "Parent effects with their intervals, largest first; the typical group's rate at the right.") }}
+<div class="scroll">{{ data_table(parents) }}</div>{% endif %}
 <h3>Chain mixing</h3>
 {% if "mixing" in images %}
 {{ figure("mixing", "Traces of the population parameters by chain, and each chain's rank histogram; well-mixed chains overlap and give flat, alike histograms.") }}
@@ -262,7 +268,8 @@ TEMPLATE = """<!DOCTYPE html>
 
 <section id="ranks">
 <h2><span class="no">6</span>Ranks and targets</h2>
-{% if ranks %}
+{% if ranks and ranks.none %}<p><strong>No ranking:</strong> {{ ranks.none }}.</p>
+{% elif ranks %}
 <p>{{ ranks.note }}</p>
 {{ figure("ranks", ranks.caption) }}
 <div class="grid2">

@@ -18,7 +18,13 @@ def ranks(folder: FolderContents) -> dict | None:
     rec = folder.record.get("ranking") or {}
     k = rec.get("top_k") or rec.get("top") or 5
     better = rec.get("better", "higher")
-    order = ranks.sort_values(["rank_median", "group"], kind="stable")
+    unranked = int(ranks["rank_median"].isna().sum())
+    order = ranks.dropna(subset=["rank_median"]).sort_values(["rank_median", "group"],
+                                                             kind="stable")
+    if order.empty:
+        return {"none": rec.get("ranking_note") or "not ranked: fewer than two groups have"
+                " trials", "note": "", "caption": "", "best": None, "worst": None,
+                "pairwise": None, "pairwise_note": ""}
     labels = {
         "rank_median": "rank",
         "rank_lower": "rank low",
@@ -52,6 +58,7 @@ def ranks(folder: FolderContents) -> dict | None:
         f" the groups are ranked; the rank shown is the median over the draws, with its"
         f" central {fmt(level)} interval. P(in best {k}) is the share of draws in which the"
         f" group is among the best {k}."
+        + (f" {unranked} group(s) with no trials have no rank (no data)." if unranked else "")
     )
     pair = folder.tables.get("pairwise")
     pair_table = None
@@ -65,6 +72,7 @@ def ranks(folder: FolderContents) -> dict | None:
             wide.reset_index(drop=True), kinds={c: "prob" for c in wide.columns[1:]}
         )
     return {
+        "none": "",
         "note": note,
         "caption": f"Rank medians and intervals; the best {k} and worst {k} positions in colour,"
         f" with P(in best {k}) or P(in worst {k}) at the right.",
@@ -85,11 +93,12 @@ def targets(folder: FolderContents) -> list | None:
         ("target rate", fmt(doc.get("target"))),
         ("false-flag level", fmt(doc.get("fdr_level"))),
     ]
+    words = doc.get("flag_words") or {}
     for side in ("above", "below"):
         part = doc.get(side) or {}
         rows.append(
             (
-                f"flagged {side} target",
+                f"flagged {words.get(side, side + ' target')}",
                 f"{fmt(part.get('flagged'), 'int')} groups"
                 f" (expected share of false flags {fmt(part.get('expected_false_share'))})",
             )

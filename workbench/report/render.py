@@ -94,6 +94,8 @@ def _model_parts(folder: FolderContents) -> dict:
         "model_rows": _sections.model_rows(folder),
         "population": _sections.population(folder),
         "population_file": FILES["population"],
+        "parents": _sections.parents(folder),
+        "parents_file": FILES["parents"],
         "mixing_note": _mixing_note(folder),
         "verification": [
             (k.replace("_", " "), pretty(v)) for k, v in (record.get("verification") or {}).items()

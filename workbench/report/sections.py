@@ -51,6 +51,9 @@ STATISTIC_NAMES = {
     "sd_rate": "sd of observed rates",
     "max_rate": "highest observed rate",
     "min_rate": "lowest observed rate",
+    "dispersion": "standardised dispersion",
+    "tail_share": "share outside their central 95%",
+    "central_share": "share inside their central 50%",
     "zero_success_groups": "groups with no successes",
     "chi_square": "chi-square discrepancy",
 }
@@ -253,6 +256,39 @@ def population(folder: FolderContents) -> Table | None:
     )
 
 
+def flag_class(flag, better: str | None) -> str:
+    """The row class of a target flag: ``flag-better`` or ``flag-worse`` (its colour follows
+    good and bad, not the side); a folder written before the flags said better or worse is
+    read with its ``better`` setting."""
+    flag = "" if flag is None or (isinstance(flag, float) and flag != flag) else str(flag)
+    if not flag:
+        return ""
+    if flag.endswith("(better)") or flag.endswith("(worse)"):
+        good = flag.endswith("(better)")
+    else:
+        good = flag.startswith("above") == ((better or "higher") == "higher")
+    return "flag-better" if good else "flag-worse"
+
+
+def parents(folder: FolderContents) -> Table | None:
+    """Section 2 (nested model): each parent's effect and the rate of its typical group."""
+    frame = folder.tables.get("parents")
+    if frame is None or frame.empty:
+        return None
+    level = folder.settings.get("level")
+    lab = f"{level:.0%} " if isinstance(level, float) else ""
+    frame = frame.sort_values(["effect_mean", "parent"], ascending=[False, True], kind="stable")
+    return page_table(
+        frame,
+        labels={"effect_mean": "effect (log-odds)", "effect_lower": f"{lab}lower",
+                "effect_upper": f"{lab}upper", "typical_rate_median": "typical group's rate",
+                "typical_rate_lower": f"{lab}lower", "typical_rate_upper": f"{lab}upper"},
+        kinds={"groups": "int", "effect_mean": "num", "effect_lower": "num",
+               "effect_upper": "num", "typical_rate_median": "rate",
+               "typical_rate_lower": "rate", "typical_rate_upper": "rate"},
+    )
+
+
 def estimates(folder: FolderContents, table_rows: int) -> tuple[Table, str]:
     """Section 5: the estimates table, whole or its highest and lowest rows, and a note."""
     est = folder.estimates
@@ -265,9 +301,10 @@ def estimates(folder: FolderContents, table_rows: int) -> tuple[Table, str]:
     if isinstance(level, float):
         lab["lower"], lab["upper"] = f"{level:.0%} lower", f"{level:.0%} upper"
 
+    better = (folder.record.get("ranking") or {}).get("better") or folder.settings.get("better")
+
     def row_class(r):
-        flag = str(r.get("target_flag") or "")
-        return "flag-above" if flag.startswith("above") else "flag-below" if flag else ""
+        return flag_class(r.get("target_flag"), better)
 
     if n <= table_rows:
         note = (

@@ -79,7 +79,7 @@ def test_names_the_group_whose_flag_hinges_on_the_prior():
     assert "hinge" in doc["sentence"]
     row = table[(table["group"] == "hinge") & (table["alternative"] == "weaker pooling, confident")]
     assert bool(row["flag_changes"].iloc[0])
-    assert row["alternative_flag"].iloc[0] == "above target"
+    assert row["alternative_flag"].iloc[0] == "above target (better)"
     # weaker pooling pulls the estimate less toward the population mean: it moves up
     assert row["mean_shift"].iloc[0] > 0
 
