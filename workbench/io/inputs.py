@@ -19,6 +19,7 @@ import pandas as pd
 
 from ..models import DataError, GroupCounts
 from ..models.exceptions import join_problems
+from . import covariates as covariate_coding
 from .runfolder import NEW_GROUP_LABEL
 
 TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
@@ -396,11 +397,15 @@ def load_groups(
     outcome: str | None = None,
     covariates: list[str] | tuple[str, ...] = (),
     parent: str | None = None,
+    reference_level: list[str] | tuple[str, ...] = (),
 ) -> LoadedData:
     """Read, validate and aggregate a table into :class:`models.GroupCounts`.
 
-    ``covariates`` name numeric group-level columns (one value per group: rows of one group
-    must agree); they are kept beside the counts for models that use them. ``parent`` names
+    ``covariates`` name numeric or text columns (see :mod:`workbench.io.covariates`: text
+    becomes indicators against a reference level, ``reference_level`` items ``COL=LEVEL``
+    name it). When every covariate takes one value per group they are group-level; when one
+    differs between rows of a group the rows are summed by (group, covariate pattern) into
+    the counts' cells (trial-level case mix). ``parent`` names
     the column of each group's parent (a region for stores), one per group, for the nested
     model.
 
@@ -463,22 +468,10 @@ def load_groups(
             ),
             rows,
         )
-    x = {}
-    for c in covariates:
-        values = pd.to_numeric(table[c].astype("string").str.strip(), errors="coerce")
-        values = values.to_numpy(dtype=float, na_value=np.nan)
-        bad = np.flatnonzero(~np.isfinite(values))
-        raw = table[c].to_numpy(dtype=object)
-        _report(
-            bad,
-            labels,
-            problems,
-            lambda i, c=c, raw=raw: (
-                f"covariate column {c!r} has {str(raw[i])!r}; covariates must be finite numbers"
-            ),
-            rows,
-        )
-        x[c] = values
+    references = covariate_coding.parse_references(reference_level, covariates)
+    x, coding = covariate_coding.code_columns(
+        table, covariates, n, references,
+        lambda bad, describe: _report(bad, labels, problems, describe, rows))
     if problems:
         _raise_problems(problems)
 
@@ -486,21 +479,14 @@ def load_groups(
     summed = frame.groupby("group", sort=False).agg(
         successes=("successes", "sum"), trials=("trials", "sum"), rows=("successes", "size")
     )
-    cov_frame = None
-    if covariates:
+    cov_frame = cells = None
+    trial_level = covariate_coding.varies_within(labels.to_numpy(), x)
+    if trial_level:
+        cells = covariate_coding.cells_of(labels.to_numpy(), summed.index, y, n, x)
+    elif x:
         per_row = pd.DataFrame(x)
         per_row["group"] = labels.to_numpy()
-        spread = per_row.groupby("group", sort=False).agg(["min", "max"])
-        for c in covariates:
-            differ = spread.index[(spread[(c, "min")] != spread[(c, "max")]).to_numpy()]
-            if len(differ):
-                i = int(np.flatnonzero(labels.to_numpy() == differ[0])[1])
-                raise DataError(
-                    f"{rows.label(i)} (group {differ[0]!r}): covariate {c!r} differs between"
-                    f" rows of the same group ({len(differ)} group(s) so); a covariate takes one"
-                    " value per group."
-                )
-        cov_frame = per_row.groupby("group", sort=False)[list(covariates)].first()
+        cov_frame = per_row.groupby("group", sort=False)[list(x)].first()
         cov_frame = cov_frame.loc[summed.index].reset_index(drop=True)
     parents = None
     if parent is not None:
@@ -532,12 +518,27 @@ def load_groups(
         summed["trials"],
         covariates=cov_frame,
         parents=parents,
+        cells=cells,
     )
-    return reconcile(
+    loaded = reconcile(
         counts, source=name, rows_read=int(len(table)), rows_per_group=summed["rows"].to_numpy(),
         group=group, successes=successes, trials=trials, outcome=outcome,
         covariates=covariates, parent=parent,
     )
+    if coding:
+        loaded.reconciliation["covariate_coding"] = coding
+        loaded.reconciliation["case_mix"] = "trial-level" if cells is not None else "group-level"
+        if cells is not None:
+            loaded.reconciliation["cells"] = int(cells.n_cells)
+            loaded.reconciliation["trial_level_covariates"] = [
+                c for c in covariates if any(m == c or m in coding[c].get("indicators", ())
+                                             for m in trial_level)]
+            loaded.notes.append(
+                f"covariate(s) {', '.join(map(repr, loaded.reconciliation['trial_level_covariates']))}"
+                " differ within groups: the"
+                f" {int(len(table)):,} rows were summed into {cells.n_cells:,} cells of (group,"
+                " covariate pattern) and the fit adjusts for case mix.")
+    return loaded
 
 
 def reconcile(counts: GroupCounts, *, source: str, rows_read: int, rows_per_group,
