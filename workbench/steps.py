@@ -14,9 +14,9 @@ import time
 from pathlib import Path
 
 from . import progress
+from .analysis.casemix import adjusted_draws
 from .analysis.checks import check_posterior
 from .analysis.comparison import compare_posteriors
-from .analysis.casemix import adjusted_draws
 from .analysis.draws import group_draws
 from .analysis.predictions import default_seed, predict
 from .analysis.ranking import compute as compute_ranking

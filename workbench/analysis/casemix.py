@@ -112,8 +112,10 @@ def case_mix_tables(idata, level: float = 0.95) -> dict[str, pd.DataFrame]:
         ratio = table["observed_expected"].to_numpy()
         side = np.where(ratio > hi, "high", np.where(ratio < lo, "low", ""))
         table[f"oe_outside_{label}"] = np.where(n > 0, side, "")
-    top = float(max(e.max(initial=0.0), 1.0))
-    grid = np.geomspace(min(0.5, top), top * 1.1, FUNNEL_CURVE_POINTS)
+    seen = e[e > 0]
+    low = float(seen.min()) * 0.8 if len(seen) else 0.5
+    top = float(seen.max()) * 1.2 if len(seen) else 1.0
+    grid = np.geomspace(low, max(top, low * 1.01), FUNNEL_CURVE_POINTS)
     curve = {"expected": grid}
     for label, mass in FUNNEL_LEVELS.items():
         curve[f"lower_{label}"], curve[f"upper_{label}"] = oe_limits(grid, mass)

@@ -530,11 +530,12 @@ def load_groups(
         loaded.reconciliation["case_mix"] = "trial-level" if cells is not None else "group-level"
         if cells is not None:
             loaded.reconciliation["cells"] = int(cells.n_cells)
-            loaded.reconciliation["trial_level_covariates"] = [
+            varying = "trial_level_covariates"
+            loaded.reconciliation[varying] = [
                 c for c in covariates if any(m == c or m in coding[c].get("indicators", ())
                                              for m in trial_level)]
             loaded.notes.append(
-                f"covariate(s) {', '.join(map(repr, loaded.reconciliation['trial_level_covariates']))}"
+                f"covariate(s) {', '.join(map(repr, loaded.reconciliation[varying]))}"
                 " differ within groups: the"
                 f" {int(len(table)):,} rows were summed into {cells.n_cells:,} cells of (group,"
                 " covariate pattern) and the fit adjusts for case mix.")
