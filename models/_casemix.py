@@ -39,7 +39,12 @@ def _compile():
     import numba
 
     njit = numba.njit(cache=True)
-    t, log_w = _T, _LOG_W
+    g_and_slope, mode = _core(njit)
+    return _loglik_kernel(njit, g_and_slope, mode), _draw_kernel(njit, g_and_slope, mode)
+
+
+def _core(njit):
+    """The integrand's log, slope and curvature over a group's cells, and its mode."""
 
     @njit
     def g_and_slope(z, y, n, m, a, b, s):  # pragma: no cover - compiled
@@ -83,6 +88,13 @@ def _compile():
                 z = 0.5 * (lo + hi)
         return z, 1.0 / np.sqrt(g_and_slope(z, y, n, m, a, b, s)[2])
 
+    return g_and_slope, mode
+
+
+def _loglik_kernel(njit, g_and_slope, mode):
+    """log L_g by adaptive Gauss-Hermite, with its gradient per cell and in sigma."""
+    t, log_w = _T, _LOG_W
+
     @njit
     def loglik(y, n, m, starts, s):  # pragma: no cover - compiled
         groups = starts.size - 1
@@ -116,6 +128,12 @@ def _compile():
             value[g] = np.log(scale) + top + np.log(total) - 0.5 * np.log(2.0 * np.pi)
             d_s[g] = ds
         return value, d_m, d_s
+
+    return loglik
+
+
+def _draw_kernel(njit, g_and_slope, mode):
+    """Exact draws of each group's z by rejection under a tangent envelope."""
 
     @njit
     def draws(y, n, m2, starts, s2, tangents, seed):  # pragma: no cover - compiled
@@ -182,7 +200,7 @@ def _compile():
                         break
         return out, proposals
 
-    return loglik, draws
+    return draws
 
 
 class _Kernels:
@@ -445,7 +463,8 @@ def cell_log_likelihood(idata) -> tuple[np.ndarray, np.ndarray]:
 
     Both are sums over the group's cells, binomial coefficients included.
     """
-    from ._posterior import attr
+    import json
+
     from ._stats import log_choose
 
     post, const = idata.posterior, idata.constant_data
@@ -458,7 +477,7 @@ def cell_log_likelihood(idata) -> tuple[np.ndarray, np.ndarray]:
     lc = np.bincount(group, log_choose(n, y), minlength=groups)
     alpha = post["alpha"].values.reshape(-1)
     fixed = alpha[:, None] * np.ones(len(group))
-    for k, name in enumerate(attr(idata, "covariate_effects") or []):
+    for k, name in enumerate(json.loads(post.attrs.get("covariate_effects") or "[]")):
         fixed = fixed + post[name].values.reshape(-1)[:, None] * x[:, k]
     shift = post["group_shift"].transpose("chain", "draw", "group").values.reshape(len(alpha), -1)
     parent_part = np.zeros_like(shift)
