@@ -6,7 +6,7 @@ Never imports ``workbench``.
 from __future__ import annotations
 
 from ._closed import closed_form
-from ._data import GroupCounts
+from ._data import CaseMix, GroupCounts
 from ._grid import HyperPrior
 from ._model import (
     MODELS,
@@ -37,6 +37,7 @@ from .exceptions import (
 
 __all__ = [
     "BetaBinomial",
+    "CaseMix",
     "CompletePooling",
     "ConvergenceWarning",
     "DataError",

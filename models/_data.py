@@ -27,6 +27,10 @@ class GroupCounts:
         Numeric group-level columns, one row per group in the same order.
     parents : sequence of str, optional
         The parent of each group (a region for stores), for the nested model.
+    cells : CaseMix, optional
+        Trial-level covariates: the counts of each group split by covariate pattern (one
+        cell per group and pattern). The cells' counts must sum to the group's counts; with
+        cells, ``covariates`` is None (every covariate lives in the cells).
 
     Raises
     ------
@@ -39,6 +43,7 @@ class GroupCounts:
     trials: np.ndarray
     covariates: pd.DataFrame | None = field(default=None, compare=False)
     parents: np.ndarray | None = field(default=None, compare=False)
+    cells: CaseMix | None = field(default=None, compare=False)
 
     def __init__(
         self,
@@ -47,6 +52,7 @@ class GroupCounts:
         trials: Sequence[int],
         covariates: pd.DataFrame | None = None,
         parents: Sequence[str] | None = None,
+        cells: CaseMix | None = None,
     ) -> None:
         names_arr = np.asarray([str(x) for x in names], dtype=object)
         y = _as_counts(successes, "successes", names_arr)
@@ -86,8 +92,13 @@ class GroupCounts:
                 raise DataError(
                     f"group {blank[0]!r} has a blank parent label; give every group its parent."
                 )
+        if cells is not None:
+            cells.check(names_arr, y, n)
+            if covariates is not None:
+                raise DataError("give covariates either per group or in cells, not both.")
         object.__setattr__(self, "covariates", covariates)
         object.__setattr__(self, "parents", parents)
+        object.__setattr__(self, "cells", cells)
 
     @property
     def n_groups(self) -> int:
@@ -116,6 +127,56 @@ class GroupCounts:
     def subset(self, keep: np.ndarray) -> GroupCounts:
         """The groups where the boolean mask ``keep`` is true."""
         return GroupCounts(self.names[keep], self.successes[keep], self.trials[keep])
+
+
+@dataclass(frozen=True)
+class CaseMix:
+    """Counts by (group, covariate pattern): the cells of a trial-level covariate model.
+
+    ``group`` holds each cell's group index (0 .. groups - 1, cells sorted by it),
+    ``successes`` and ``trials`` the cell's counts, ``x`` its covariate values (one numeric
+    column per covariate or factor indicator, in the input's units).
+    """
+
+    group: np.ndarray
+    successes: np.ndarray
+    trials: np.ndarray
+    x: pd.DataFrame
+
+    def __post_init__(self) -> None:
+        g = np.asarray(self.group, dtype=np.int64)
+        order = np.argsort(g, kind="stable")
+        object.__setattr__(self, "group", g[order])
+        object.__setattr__(self, "successes", np.asarray(self.successes, dtype=np.int64)[order])
+        object.__setattr__(self, "trials", np.asarray(self.trials, dtype=np.int64)[order])
+        object.__setattr__(self, "x", self.x.iloc[order].reset_index(drop=True))
+
+    @property
+    def n_cells(self) -> int:
+        return len(self.group)
+
+    def starts(self, groups: int) -> np.ndarray:
+        """Offsets: the cells of group j are ``starts[j]:starts[j + 1]``."""
+        return np.searchsorted(self.group, np.arange(groups + 1)).astype(np.int64)
+
+    def check(self, names: np.ndarray, y: np.ndarray, n: np.ndarray) -> None:
+        if not (len(self.group) == len(self.successes) == len(self.trials) == len(self.x)):
+            raise DataError("cells: group, successes, trials and x need one entry per cell.")
+        if len(self.group) and (self.group.min() < 0 or self.group.max() >= len(names)):
+            raise DataError(f"cells: group indices must lie in 0..{len(names) - 1}.")
+        if (self.successes < 0).any() or (self.successes > self.trials).any():
+            raise DataError("cells: each cell needs 0 <= successes <= trials.")
+        sy = np.bincount(self.group, self.successes, minlength=len(names))
+        sn = np.bincount(self.group, self.trials, minlength=len(names))
+        if not (np.array_equal(sy, y) and np.array_equal(sn, n)):
+            i = int(np.flatnonzero((sy != y) | (sn != n))[0])
+            raise DataError(
+                f"cells of group {names[i]!r} sum to {int(sy[i])}/{int(sn[i])}, not the group's"
+                f" {int(y[i])}/{int(n[i])}; the cells must split the group's counts."
+            )
+        bad = ~np.isfinite(self.x.to_numpy(dtype=float))
+        if bad.any():
+            raise DataError("cells: covariate values must be finite numbers.")
 
 
 def _as_counts(values: Sequence[int], what: str, names: np.ndarray) -> np.ndarray:

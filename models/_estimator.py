@@ -150,6 +150,8 @@ class _Estimator:
             covariates=x,
             covariate_columns=columns,
             parent_effects=parent_effects,
+            group_vars=getattr(self, "_group_vars", None),
+            cell_data=getattr(self, "_cell_data", None),
         )
         add_log_likelihood(idata)
         self.fit_seconds_ = time.perf_counter() - started

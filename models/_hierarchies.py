@@ -75,9 +75,12 @@ class LogitNormal(_Estimator):
         }
 
     def _fit(self, data, engine, seed):
-        from . import _collapsed
+        from . import _casemix, _collapsed
         from ._logit import covariate_names, population_rates, sample, standardise
 
+        self._group_vars = self._cell_data = None
+        if data.cells is not None:
+            return _casemix.fit_cells(self, data, engine, seed)
         x, info = standardise(data.covariates, data.n_groups)
         parent_index = self._parent_index(data)
         run = _collapsed.sample if engine == "mcmc" else sample
@@ -139,6 +142,15 @@ class LogitNormal(_Estimator):
         from ._posterior import logit_means
 
         post = self.idata_.posterior
+        if "expected" in post:  # trial-level case mix: the average group on these cases
+            obs = self.data_.observed_rate
+            est = post["theta"].mean(("chain", "draw")).values
+            prior = post["expected"].mean(("chain", "draw")).values / np.maximum(
+                self.data_.trials, 1)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                share = (obs - est) / (obs - prior)
+            return np.where(np.isnan(obs), 1.0,
+                            np.clip(np.nan_to_num(share, nan=0.0), 0.0, 1.0))
         m = logit_means(self.idata_).reshape(-1, self.data_.n_groups)
         sigma = post["sigma"].values.ravel()
         keep = np.linspace(0, len(sigma) - 1, min(len(sigma), 200)).astype(int)

@@ -52,6 +52,8 @@ def make_idata(
     covariates: np.ndarray | None = None,
     covariate_columns: tuple[str, ...] = (),
     parent_effects: np.ndarray | None = None,
+    group_vars: Mapping[str, np.ndarray] | None = None,
+    cell_data: tuple | None = None,
 ) -> az.InferenceData:
     """Assemble the posterior currency from arrays laid out as (chain, draw[, group]).
 
@@ -75,6 +77,8 @@ def make_idata(
         labels = np.unique(data.parents.astype(str))
         coords["parent"] = labels
         post["parent_effect"] = (("chain", "draw", "parent"), parent_effects)
+    for name, value in (group_vars or {}).items():
+        post[name] = (("chain", "draw", "group"), np.asarray(value, dtype=float))
     posterior = xr.Dataset(post, coords=coords)
     observed = xr.Dataset(
         {"successes": (("group",), data.successes)}, coords={"group": coords["group"]}
@@ -90,6 +94,13 @@ def make_idata(
             dims=("group", "covariate"),
             coords={"group": coords["group"], "covariate": list(covariate_columns)},
         )
+    if cell_data is not None:
+        cells, x, columns = cell_data
+        constant["cell_group"] = ("cell", cells.group)
+        constant["cell_successes"] = ("cell", cells.successes)
+        constant["cell_trials"] = ("cell", cells.trials)
+        constant["cell_covariates"] = xr.DataArray(
+            x, dims=("cell", "covariate"), coords={"covariate": list(columns)})
     groups = {"posterior": posterior, "observed_data": observed, "constant_data": constant}
     if sample_stats:
         groups["sample_stats"] = xr.Dataset(
@@ -165,6 +176,10 @@ def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
         a = mu * kappa
         b = (1 - mu) * kappa
         integrated = betabinom_logpmf(y, n, a, b)
+    elif model in ("logit-normal", "nested") and "cell_trials" in idata.constant_data:
+        from ._casemix import cell_log_likelihood
+
+        cond, integrated = cell_log_likelihood(idata)
     elif model in ("logit-normal", "nested"):
         integrated = _logit_normal_integrated(idata, y, n, lc)
     elif model == "no-pooling":

@@ -38,3 +38,16 @@ SHORT_CAUTION = (
 TERMINAL_CAUTION = (
     "caution: rank intervals overlap; a rank is no verdict on a group or the people in it."
 )
+
+#: the caution of a fit with covariates (the report's cautions and run.json): {columns}
+CASE_MIX_CAUTION = (
+    "Adjustment covers only the measured case mix ({columns}). Differences between groups in"
+    " anything these columns do not record (other risk factors, how cases are selected or"
+    " recorded) remain in every adjusted rate, observed/expected ratio and rank; an adjusted"
+    " comparison is fairer, not fair."
+)
+
+
+def case_mix_caution(columns) -> str:
+    """The case-mix caution naming the covariates used."""
+    return CASE_MIX_CAUTION.format(columns=", ".join(str(c) for c in columns))

@@ -341,9 +341,17 @@ COLUMN_OPTIONS = _options(
     ),
     Option(
         "covariates", (), Texts(),
-        "numeric group-level columns (one value per group) for --model logit-normal or nested,"
-        " e.g. a case-mix score; standardised before fitting", "columns", "COL",
+        "covariate columns for --model logit-normal or nested: numeric, or text (a factor, coded"
+        " against a reference level); one value per group, or varying within groups (trial-"
+        "level case mix: rows summed by group and covariate pattern); standardised before"
+        " fitting", "columns", "COL",
         "none",
+    ),
+    Option(
+        "reference_level", (), Texts(),
+        "reference level of a text covariate, as COL=LEVEL (text covariates become 0/1"
+        " indicators against it; effects are odds ratios against it)", "columns", "COL=LEVEL",
+        "the level with the most trials",
     ),
     Option(
         "parent", None, Optional(Text()),
@@ -608,6 +616,13 @@ def _check_combination(s: Mapping[str, object]) -> None:
             f"{label('successes')} and {label('trials')} both name column {s['successes']!r};"
             " give the column of successes and the column of trials."
         )
+    for item in s["reference_level"]:
+        column = item.partition("=")[0].strip()
+        if column not in s["covariates"]:
+            raise ParameterError(
+                f"{label('reference_level')} {item}: {column!r} is not among the covariates"
+                f" {list(s['covariates'])}; name it in {label('covariates')} too, and give the"
+                " reference as COLUMN=LEVEL.")
     low, high = s["p_bounds"]
     if not low < 0.5 < high:
         raise ParameterError(

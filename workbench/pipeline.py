@@ -18,9 +18,11 @@ import pandas as pd
 from . import progress
 from .analysis import partitioned
 from .analysis import verify as verification
+from .analysis.casemix import adjusted_draws, adjusted_ranking_columns, case_mix_tables
 from .analysis.checks import check_posterior
 from .analysis.diagnostics import MISFIT, diagnose, first_remedy_settings, include_checks
 from .analysis.draws import group_draws
+from .analysis.effects import effects_table
 from .analysis.predictions import default_seed, predict
 from .analysis.ranking import compute as compute_ranking
 from .analysis.ranking import merge_estimate_columns, rank_options
@@ -70,7 +72,13 @@ def load(source, settings: FitSettings, client=None) -> LoadedData:
         outcome=settings["outcome"],
         covariates=tuple(settings["covariates"]),
         parent=settings["parent"],
+        reference_level=tuple(settings["reference_level"]),
     )
+
+
+def has_covariates(counts) -> bool:
+    """Covariates per group or per cell (trial-level case mix)."""
+    return counts.covariates is not None or counts.cells is not None
 
 
 def check_model_inputs(loaded: LoadedData, settings: FitSettings) -> None:
@@ -85,7 +93,7 @@ def check_model_inputs(loaded: LoadedData, settings: FitSettings) -> None:
             f"a parent column is used only by {', '.join(PARENT_MODELS)}; choose"
             f" {label('model')} {PARENT_MODELS[0]} or drop {label('parent')}."
         )
-    if loaded.counts.covariates is not None and model not in COVARIATE_MODELS:
+    if has_covariates(loaded.counts) and model not in COVARIATE_MODELS:
         raise ParameterError(
             f"covariates are used only by {', '.join(COVARIATE_MODELS)}; choose"
             f" {label('model')} {COVARIATE_MODELS[0]} or drop {label('covariates')}."
@@ -106,8 +114,9 @@ def for_model(loaded: LoadedData, settings: FitSettings) -> tuple[LoadedData, Fi
     changes = {}
     if model not in PARENT_MODELS and counts.parents is not None:
         changes["parent"] = None
-    if model not in COVARIATE_MODELS and counts.covariates is not None:
+    if model not in COVARIATE_MODELS and has_covariates(counts):
         changes["covariates"] = ()
+        changes["reference_level"] = ()
     for name, users in PRIOR_USERS.items():
         if model not in users:
             changes[name] = FIT_OPTIONS[name].default
@@ -115,7 +124,9 @@ def for_model(loaded: LoadedData, settings: FitSettings) -> tuple[LoadedData, Fi
         return loaded, settings.replace(**changes)
     keep_cov = None if "covariates" in changes else counts.covariates
     keep_par = None if "parent" in changes else counts.parents
-    counts = type(counts)(counts.names, counts.successes, counts.trials, keep_cov, keep_par)
+    keep_cells = None if "covariates" in changes else counts.cells
+    counts = type(counts)(counts.names, counts.successes, counts.trials, keep_cov, keep_par,
+                          cells=keep_cells)
     return dataclasses.replace(loaded, counts=counts), settings.replace(**changes)
 
 
@@ -244,6 +255,8 @@ def verify_run(run: Run) -> None:
     fitted = run.model
     used = attr(fitted.idata_, "engine")
     others = [e for e in MODELS[run.settings["model"]].engines if e != used]
+    if run.loaded.counts.cells is not None:  # trial-level case mix: the collapsed engine only
+        others = []
     level = run.settings["level"]
     settings = FitSettings(run.settings)
     if others:
@@ -282,13 +295,21 @@ def add_checks(run: Run) -> None:
     run.tables["group_checks"] = checks.groups
 
 
+def add_covariate_tables(run: Run, level: float) -> None:
+    """effects.csv (odds ratios) and, with trial-level case mix, the adjustment's tables."""
+    effects = effects_table(run.idata, run.loaded.reconciliation.get("covariate_coding"), level)
+    if effects is not None:
+        run.tables["effects"] = effects
+    run.tables.update(case_mix_tables(run.idata, level))
+
+
 def add_ranking(run: Run) -> None:
     s = run.settings
     opts = rank_options(**{k: s[k] for k in ("top", "better", "fdr", "level", "target",
                                                "compare_groups", "settle_chance", "max_trials")})
     draws = group_draws(run.idata, run.estimates, target=s["target"],
                         closed=getattr(run.model, "exact_", None))
-    result = compute_ranking(draws, opts)
+    result = compute_ranking(adjusted_draws(run.idata, draws), opts)  # adjusted with case mix
     run.tables.update(result.tables)
     run.estimates = merge_estimate_columns(run.estimates, result.estimate_columns)
     run.record_parts["ranking"] = result.record
@@ -370,6 +391,7 @@ def fit_run(source, settings: FitSettings, client=None) -> Run:
     if hasattr(estimator, "parent_summary"):
         run.tables["parents"] = estimator.parent_summary(level)
     run.tables["population_draws"] = population_draws(run.idata)
+    add_covariate_tables(run, level)
     if settings["verify"]:
         verify_run(run)
     if settings["checks"]:
@@ -378,6 +400,9 @@ def fit_run(source, settings: FitSettings, client=None) -> Run:
     include_checks(diagnostics, run.documents.get("checks"))
     with progress.step("ranks, flags and trials needed"):
         add_ranking(run)
+    if "adjusted_rates" in run.tables:
+        run.tables["adjusted_rates"] = adjusted_ranking_columns(run.tables["adjusted_rates"],
+                                                                run.tables["ranks"])
     if settings["predict_trials"] is not None:
         add_predictions(run)
     run.seconds = time.perf_counter() - started

@@ -14,6 +14,7 @@ import time
 from pathlib import Path
 
 from . import progress
+from .analysis.casemix import adjusted_draws
 from .analysis.checks import check_posterior
 from .analysis.comparison import compare_posteriors
 from .analysis.draws import group_draws
@@ -135,7 +136,7 @@ def rank_folder(path: str | Path, **given):
     opts = rank_options(**values)
     # the estimates' prob_above_target column refers to the recorded target, not the new one
     draws = group_draws(folder.idata, folder.estimates, target=settings.get("target"))
-    result = compute_ranking(draws, opts)
+    result = compute_ranking(adjusted_draws(folder.idata, draws), opts)
     result.final = folder.final
     tables = dict(result.tables)
     tables["estimates"] = merge_estimate_columns(folder.estimates, result.estimate_columns)

@@ -84,9 +84,15 @@ def test_covariate_errors_name_the_row(tmp_path):
     path.write_text("group,successes,trials,mix\na,1,5,0.2\nb,2,5,high\n")
     with pytest.raises(DataError, match=r"row 2 .*covariate column 'mix' has 'high'"):
         load_groups(path, covariates=["mix"])
-    path.write_text("group,successes,trials,mix\na,1,5,0.2\nb,2,5,0.3\na,1,5,0.9\n")
-    with pytest.raises(DataError, match=r"row 3 .*group 'a'.*covariate 'mix' differs"):
-        load_groups(path, covariates=["mix"])
+    # a covariate that differs within a group makes the fit trial-level: rows are summed by
+    # (group, covariate pattern) into cells that split each group's counts
+    path.write_text("group,successes,trials,mix\na,1,5,0.2\nb,2,5,0.3\na,1,5,0.9\na,2,4,0.2\n")
+    loaded = load_groups(path, covariates=["mix"])
+    cells = loaded.counts.cells
+    assert loaded.counts.covariates is None and loaded.reconciliation["case_mix"] == "trial-level"
+    assert cells.n_cells == 3
+    assert cells.x["mix"].tolist() == [0.2, 0.9, 0.3]
+    assert cells.successes.tolist() == [3, 1, 2] and cells.trials.tolist() == [9, 5, 5]
     with pytest.raises(DataError, match="no column 'age'"):
         load_groups(path, covariates=["age"])
 

@@ -20,6 +20,7 @@ import pandas as pd
 from ..models import DataError, GroupCounts
 from ..models.exceptions import join_problems
 from ..options import label
+from . import covariates as covariate_coding
 from .runfolder import NEW_GROUP_LABEL
 
 TRUE_WORDS = {"1", "true", "t", "yes", "y", "success", "1.0"}
@@ -454,13 +455,16 @@ def load_groups(
     outcome: str | None = None,
     covariates: list[str] | tuple[str, ...] = (),
     parent: str | None = None,
+    reference_level: list[str] | tuple[str, ...] = (),
 ) -> LoadedData:
     """Read, validate and aggregate a table into :class:`models.GroupCounts`.
 
-    ``covariates`` name numeric group-level columns (one value per group: rows of one group
-    must agree); they are kept beside the counts for models that use them. ``parent`` names
-    the column of each group's parent (a region for stores), one per group, for the nested
-    model.
+    ``covariates`` name numeric or text columns (see :mod:`workbench.io.covariates`: text
+    becomes indicators against a reference level, ``reference_level`` items ``COL=LEVEL``
+    name it). When every covariate takes one value per group they are group-level; when one
+    differs between rows of a group the rows are summed by (group, covariate pattern) into
+    the counts' cells (trial-level case mix). ``parent`` names the column of each group's
+    parent (a region for stores), one per group, for the nested model.
 
     Raises
     ------
@@ -483,22 +487,10 @@ def load_groups(
         raise DataError(f"no groups: {name} has a header but no data rows; add at least one row.")
     labels, y, n, problems = check_rows(table, group=group, successes=successes,
                                         trials=trials, outcome=outcome, rows=rows)
-    x = {}
-    for c in covariates:
-        values = pd.to_numeric(table[c].astype("string").str.strip(), errors="coerce")
-        values = values.to_numpy(dtype=float, na_value=np.nan)
-        bad = np.flatnonzero(~np.isfinite(values))
-        raw = table[c].to_numpy(dtype=object)
-        _report(
-            bad,
-            labels,
-            problems,
-            lambda i, c=c, raw=raw: (
-                f"covariate column {c!r} has {str(raw[i])!r}; covariates must be finite numbers"
-            ),
-            rows,
-        )
-        x[c] = values
+    references = covariate_coding.parse_references(reference_level, covariates)
+    x, coding = covariate_coding.code_columns(
+        table, covariates, n, references,
+        lambda bad, describe: _report(bad, labels, problems, describe, rows))
     if problems:
         _raise_problems(problems)
 
@@ -506,58 +498,78 @@ def load_groups(
     summed = frame.groupby("group", sort=False).agg(
         successes=("successes", "sum"), trials=("trials", "sum"), rows=("successes", "size")
     )
-    cov_frame = None
-    if covariates:
+    cov_frame = cells = None
+    trial_level = covariate_coding.varies_within(labels.to_numpy(), x)
+    if trial_level:
+        cells = covariate_coding.cells_of(labels.to_numpy(), summed.index, y, n, x)
+    elif x:
         per_row = pd.DataFrame(x)
         per_row["group"] = labels.to_numpy()
-        spread = per_row.groupby("group", sort=False).agg(["min", "max"])
-        for c in covariates:
-            differ = spread.index[(spread[(c, "min")] != spread[(c, "max")]).to_numpy()]
-            if len(differ):
-                i = int(np.flatnonzero(labels.to_numpy() == differ[0])[1])
-                raise DataError(
-                    f"{rows.label(i)} (group {differ[0]!r}): covariate {c!r} differs between"
-                    f" rows of the same group ({len(differ)} group(s) so); a covariate takes one"
-                    " value per group."
-                )
-        cov_frame = per_row.groupby("group", sort=False)[list(covariates)].first()
+        cov_frame = per_row.groupby("group", sort=False)[list(x)].first()
         cov_frame = cov_frame.loc[summed.index].reset_index(drop=True)
     parents = None
     if parent is not None:
-        column = table[parent]
-        plabels = column.where(column.notna(), "").astype(str)
-        blank = np.flatnonzero(plabels.str.strip().eq("").to_numpy())
-        if len(blank):
-            i = int(blank[0])
-            raise DataError(
-                f"{rows.label(i)} (group {labels.iloc[i]!r}): column {parent!r} is blank;"
-                f" every row needs its parent ({len(blank)} row(s) so)."
-            )
-        pairs = pd.DataFrame({"group": labels.to_numpy(), "parent": plabels.to_numpy()})
-        per_group = pairs.groupby("group", sort=False)["parent"].nunique()
-        if (per_group > 1).any():
-            g = per_group.index[(per_group > 1).to_numpy()][0]
-            members = np.flatnonzero(labels.to_numpy() == g)
-            first = plabels.iloc[members[0]]
-            i = int(next(r for r in members if plabels.iloc[r] != first))
-            raise DataError(
-                f"{rows.label(i)} (group {g!r}): column {parent!r} is {plabels.iloc[i]!r} but an"
-                f" earlier row of the group says {first!r}; a group has one parent."
-            )
-        parents = pairs.groupby("group", sort=False)["parent"].first().loc[summed.index]
-        parents = parents.to_numpy()
+        parents = _parents_of(table[parent], parent, labels, summed.index, rows)
     counts = GroupCounts(
         summed.index.to_numpy(),
         summed["successes"],
         summed["trials"],
         covariates=cov_frame,
         parents=parents,
+        cells=cells,
     )
-    return reconcile(
+    loaded = reconcile(
         counts, source=name, rows_read=int(len(table)), rows_per_group=summed["rows"].to_numpy(),
         group=group, successes=successes, trials=trials, outcome=outcome,
         covariates=covariates, parent=parent,
     )
+    if coding:
+        _record_case_mix(loaded, coding, cells, covariates, trial_level, rows_read=len(table))
+    return loaded
+
+
+def _parents_of(column: pd.Series, parent: str, labels: pd.Series, groups: pd.Index,
+                rows: _Rows) -> np.ndarray:
+    """Each group's parent label, in ``groups`` order; one parent per group, none blank."""
+    plabels = column.where(column.notna(), "").astype(str)
+    blank = np.flatnonzero(plabels.str.strip().eq("").to_numpy())
+    if len(blank):
+        i = int(blank[0])
+        raise DataError(
+            f"{rows.label(i)} (group {labels.iloc[i]!r}): column {parent!r} is blank;"
+            f" every row needs its parent ({len(blank)} row(s) so)."
+        )
+    pairs = pd.DataFrame({"group": labels.to_numpy(), "parent": plabels.to_numpy()})
+    per_group = pairs.groupby("group", sort=False)["parent"].nunique()
+    if (per_group > 1).any():
+        g = per_group.index[(per_group > 1).to_numpy()][0]
+        members = np.flatnonzero(labels.to_numpy() == g)
+        first = plabels.iloc[members[0]]
+        i = int(next(r for r in members if plabels.iloc[r] != first))
+        raise DataError(
+            f"{rows.label(i)} (group {g!r}): column {parent!r} is {plabels.iloc[i]!r} but an"
+            f" earlier row of the group says {first!r}; a group has one parent."
+        )
+    return pairs.groupby("group", sort=False)["parent"].first().loc[groups].to_numpy()
+
+
+def _record_case_mix(loaded: LoadedData, coding: dict, cells, covariates, trial_level,
+                     *, rows_read: int) -> None:
+    """The covariates' coding and, for trial-level case mix, the cells, in the reconciliation."""
+    loaded.reconciliation["covariate_coding"] = coding
+    loaded.reconciliation["case_mix"] = "trial-level" if cells is not None else "group-level"
+    if cells is None:
+        return
+    loaded.reconciliation["cells"] = int(cells.n_cells)
+    varying = "trial_level_covariates"
+    loaded.reconciliation[varying] = [
+        c for c in covariates if any(m == c or m in coding[c].get("indicators", ())
+                                     for m in trial_level)]
+    loaded.notes.append(
+        f"covariate(s) {', '.join(map(repr, loaded.reconciliation[varying]))}"
+        " differ within groups: the"
+        f" {int(rows_read):,} rows were summed into {cells.n_cells:,} cells of (group,"
+        " covariate pattern) and the fit adjusts for case mix.")
 
 
 def reconcile(counts: GroupCounts, *, source: str, rows_read: int, rows_per_group,

@@ -102,6 +102,13 @@ def figure_makers(folder: FolderContents) -> dict[str, Maker]:
         )
     makers.update(_ranking_makers(folder))
     makers.update(_check_makers(folder))
+    if "adjusted_rates" in t:
+        from ..figures.casemix import plot_oe_funnel
+
+        makers["oe_funnel"] = (
+            lambda: plot_oe_funnel(t["adjusted_rates"], t.get("oe_funnel_curve")),
+            "Funnel plot: observed/expected against expected successes, limits 95% and 99.8%.",
+        )
     if "calibration" in t and "calibration_replicates" in t:
         from ..figures.audit import plot_calibration
 

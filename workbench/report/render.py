@@ -43,6 +43,7 @@ from ..io.runfolder import (
 )
 from ..models import versions
 from . import audit as _audit
+from . import casemix as _casemix
 from . import checks as _checks
 from . import page as _page
 from . import ranking as _ranking
@@ -54,7 +55,9 @@ from .sections import CAUTION_SHORT, CAUTIONS, TABLE_ROWS
 
 _ENV = Environment(autoescape=True, undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
 _TEMPLATE = _ENV.from_string(_page.TEMPLATE.replace(
-    '\n<section id="cautions">', _audit.SECTION + '\n<section id="cautions">', 1))
+    '\n<section id="cautions">', _audit.SECTION + '\n<section id="cautions">', 1).replace(
+    '\n<section id="cautions">', _casemix.SECTION + '\n<section id="cautions">', 1).replace(
+    "\n<h3>Population</h3>", _casemix.EFFECTS + "\n<h3>Population</h3>", 1))
 _SCRIPT_HASH = base64.b64encode(hashlib.sha256(_page.SCRIPT.encode()).digest()).decode()
 CSP = (
     "default-src 'none'; img-src data:; style-src 'unsafe-inline';"
@@ -161,7 +164,7 @@ def render(
         "images": images,
         "figures_dir": FILES["figures"],
         "caution_short": CAUTION_SHORT,
-        "cautions": list(CAUTIONS),
+        "cautions": _casemix.cautions(folder),
         "final": folder.final,
         "folder_name": name,
         "reproduce": reproduce(folder.record, folder.path, name),
@@ -169,6 +172,8 @@ def render(
         **_model_parts(folder),
         **_result_parts(folder, comparison, table_rows),
         "audit": _audit.parts(folder),
+        "covariates": _casemix.parts(folder),
+        "level": folder.settings.get("level"),
     }
     return _TEMPLATE.render(**context)
 
