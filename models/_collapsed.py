@@ -65,7 +65,14 @@ def _compile_kernels():
     import numba
 
     njit = numba.njit(cache=True)
-    t, log_w = _T, _LOG_W  # frozen into the compiled code as constants
+    g_and_slope, mode, modes = _core_kernels(njit)
+    draws = _draw_kernel(njit, g_and_slope, mode)
+    loglik = _integral_kernel(njit, g_and_slope, mode)
+    return modes, draws, loglik
+
+
+def _core_kernels(njit):
+    """A group's log integrand with its slope, and its mode (bracketed Newton)."""
 
     @njit
     def g_and_slope(z, y, n, m, s):  # pragma: no cover - compiled
@@ -115,6 +122,12 @@ def _compile_kernels():
         for i in range(y.size):
             z_out[i], sd_out[i] = mode(y[i], n[i], m[i], s[i], tol, max_steps)
         return z_out, sd_out
+
+    return g_and_slope, mode, modes
+
+
+def _draw_kernel(njit, g_and_slope, mode):
+    """Exact draws of each group's standardised log-odds by tangent-envelope rejection."""
 
     @njit
     def draws(y, n, m, s, tangents, seed):  # pragma: no cover - compiled
@@ -182,6 +195,13 @@ def _compile_kernels():
                     break
         return out, proposals
 
+    return draws
+
+
+def _integral_kernel(njit, g_and_slope, mode):
+    """The group-integrated log-likelihood and its gradient by adaptive Gauss-Hermite."""
+    t, log_w = _T, _LOG_W  # frozen into the compiled code as constants
+
     @njit
     def loglik(y, n, m, s):  # pragma: no cover - compiled
         rows = y.size
@@ -213,7 +233,7 @@ def _compile_kernels():
             d_s[i] = gs / total
         return value, d_m, d_s
 
-    return modes, draws, loglik
+    return loglik
 
 
 class _Kernels:
