@@ -10,7 +10,6 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-
 #: what an empty rank reads (a group with no trials is not ranked)
 NO_DATA = "no data"
 

@@ -8,10 +8,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from workbench.models import BetaBinomial, GroupCounts, NoPooling
 
 from workbench.analysis import draws, predictions, ranking, targets
 from workbench.cli import text
-from workbench.models import BetaBinomial, GroupCounts, NoPooling
 
 
 def _draws(model, counts) -> draws.GroupDraws:
@@ -148,4 +148,4 @@ def test_ranks_table_puts_unranked_groups_last():
     s = ranks.informative_rank_summary(theta, np.array([0, 10, 10]))
     out = ranks.ranks_table(np.array(["none", "p", "q"]), s)
     assert out["group"].iloc[-1] == "none" and np.isnan(out["rank_median"].iloc[-1])
-    assert set(out["rank_median"].iloc[:2]) == {1.0, 2.0} or out["rank_median"].iloc[:2].between(1, 2).all()
+    assert out["rank_median"].iloc[:2].between(1, 2).all()

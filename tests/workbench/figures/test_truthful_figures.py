@@ -13,12 +13,12 @@ from matplotlib.colors import to_rgb
 from matplotlib.lines import Line2D
 from matplotlib.text import Annotation, Text
 from scipy import stats
+from workbench.models import BetaBinomial, GroupCounts
 
 from workbench import figures
 from workbench.analysis import draws, funnel
 from workbench.cli import text
 from workbench.figures import PALETTE
-from workbench.models import BetaBinomial, GroupCounts
 
 
 def _renderer(fig):
