@@ -11,6 +11,7 @@ Run(model='beta-binomial', engine='exact', groups=64, verdict='ready', path='not
 from __future__ import annotations
 
 import inspect
+from collections.abc import Iterable
 from importlib import resources
 from pathlib import Path
 
@@ -19,7 +20,7 @@ from .analysis.comparison import compare_posteriors
 from .io.inputs import load_groups
 from .io.runfolder import check_replaceable
 from .models import MODELS, SUMMARY_COLUMNS, ParameterError
-from .options import FIT_OPTIONS, FitSettings, numpydoc, refuse_unknown
+from .options import FIT_OPTIONS, FitSettings, refuse_unknown
 from .results import Run, RunFolder
 from .steps import (
     check_folder,
@@ -43,6 +44,18 @@ def demo_data_path() -> Path:
             return candidate / "branch_signups.csv"
     with resources.as_file(resources.files("workbench") / "_datasets" / "branch_signups.csv") as p:
         return Path(p)
+
+
+def numpydoc(names: Iterable[str]) -> str:
+    """A numpydoc Parameters block for the declared options."""
+    lines = []
+    for name in names:
+        o = FIT_OPTIONS[name]
+        default = o.default_text or repr(o.default)
+        kind = o.check.describe() if hasattr(o.check, "describe") else ""
+        lines.append(f"{name} : {kind}, default={default}")
+        lines.append(f"    {o.help[0].upper()}{o.help[1:]}.")
+    return "\n".join(lines)
 
 
 def fit(source, **options) -> Run:

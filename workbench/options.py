@@ -631,32 +631,10 @@ def _check_combination(s: Mapping[str, object]) -> None:
         )
 
 
-def check_rank_options(values: Mapping[str, object]) -> dict:
-    """The ranking options given (None: left out), checked."""
-    return {
-        name: (None if values.get(name) is None else FIT_OPTIONS[name].validate(values[name]))
-        for name in RANK_NAMES
-        if name in values
-    }
-
-
-def numpydoc(names: Iterable[str]) -> str:
-    """A numpydoc Parameters block for the declared options."""
-    lines = []
-    for name in names:
-        o = FIT_OPTIONS[name]
-        default = o.default_text or repr(o.default)
-        kind = o.check.describe() if hasattr(o.check, "describe") else ""
-        lines.append(f"{name} : {kind}, default={default}")
-        lines.append(f"    {o.help[0].upper()}{o.help[1:]}.")
-    return "\n".join(lines)
-
-
 __all__ = [
     "FIT_OPTIONS",
     "FitSettings",
     "Option",
-    "check_rank_options",
     "flag_of",
     "label",
     "refuse_unknown",

@@ -180,9 +180,6 @@ def test_unknown_options_are_refused_with_the_known_ones():
         make_model("beta-binomial", sigma_prior=1.0)
 
 
-@pytest.mark.xfail(strict=True, reason="known: io/inputs.load_groups, analysis/calibration.summarise,"
-                   " decisions.trials_needed_table and models/_collapsed._compile_kernels are over"
-                   " 100 lines and still to be split (issue 9)")
 def test_modules_and_functions_stay_small():
     # DEVELOPERS.md: no module over ~600 lines, no function over ~80
     long_modules, long_functions = [], []

@@ -251,39 +251,30 @@ def exact_leave_one_out(idata, positions: np.ndarray) -> pd.DataFrame | None:
     )
 
 
-def leave_one_group_out(
-    idata, settings: CheckSettings | None = None, rng: np.random.Generator | None = None
-) -> GroupLoo:
-    """PSIS-LOO over groups on ``y_group``, exact values for high-k groups where cheap, LOO-PIT."""
-    settings = (settings or CheckSettings()).validate()
-    rng = rng if rng is not None else np.random.default_rng(_seed(idata, settings))
-    data = counts_of(idata)
-    post = idata.posterior
-    samples = int(post.sizes["chain"] * post.sizes["draw"])
-    seen = np.flatnonzero(data.trials > 0)
-    good_k = float("nan")  # ArviZ's own threshold, read from its PSIS-LOO result below
-    empty = pd.DataFrame(columns=GROUP_COLUMNS)
+def _unavailable(idata, samples: int, seen: np.ndarray) -> str | None:
+    """Why leaving one group out cannot be computed for this posterior (None: it can)."""
     if len(seen) == 0:
-        return GroupLoo(empty, np.nan, np.nan, np.nan, samples, good_k, 0,
-                        ["no group has any trials: nothing to predict."], available=False)
+        return "no group has any trials: nothing to predict."
     if attr(idata, "model") not in INTEGRATED_MODELS:
-        return GroupLoo(empty, np.nan, np.nan, np.nan, samples, good_k, len(seen),
-                        [f"model {attr(idata, 'model')!r} has no group-integrated log-likelihood;"
-                         " leaving one group out needs one (PSIS on the conditional one fails"
-                         " for most groups)."], available=False)
+        return (f"model {attr(idata, 'model')!r} has no group-integrated log-likelihood;"
+                " leaving one group out needs one (PSIS on the conditional one fails"
+                " for most groups).")
     if samples < MIN_LOO_DRAWS:
-        return GroupLoo(empty, np.nan, np.nan, np.nan, samples, good_k, len(seen),
-                        [f"only {samples} posterior draws; PSIS-LOO needs at least"
-                         f" {MIN_LOO_DRAWS}: fit with more draws."], available=False)
+        return (f"only {samples} posterior draws; PSIS-LOO needs at least"
+                f" {MIN_LOO_DRAWS}: fit with more draws.")
+    return None
+
+
+def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
+    """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups."""
     reff = _relative_efficiency(idata)
-    y_all = data.successes.astype(float)
-    elpd_psis = np.empty(len(seen))
-    pareto_k = np.empty(len(seen))
-    lppd = np.empty(len(seen))
-    constant = np.zeros(len(seen), dtype=bool)
-    pit_below = np.full(len(seen), np.nan)
-    pit_at = np.full(len(seen), np.nan)
-    pit_possible = True
+    y_all = counts_of(idata).successes.astype(float)
+    out = {name: np.empty(len(seen)) for name in ("elpd", "k", "lppd")}
+    out["constant"] = np.zeros(len(seen), dtype=bool)
+    out["below"] = np.full(len(seen), np.nan)
+    out["at"] = np.full(len(seen), np.nan)
+    out["pit_possible"] = True
+    out["good_k"] = float("nan")
     pit_draws = thinned_draws(samples, settings.draws)
     for cols in column_chunks(np.arange(len(seen)), samples, settings.chunk_cells):
         groups = seen[cols]
@@ -296,32 +287,29 @@ def leave_one_group_out(
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # high k is reported in the table, not as a warning
             loo = az.loo(frame, pointwise=True, reff=reff, var_name="y_group")
-        good_k = float(loo.good_k)  # min(1 - 1/log10(S), 0.7) (Vehtari et al. 2024)
-        elpd_psis[cols] = loo.loo_i.values
-        pareto_k[cols] = loo.pareto_k.values
-        lppd[cols] = special.logsumexp(ll, axis=1) - np.log(samples)
-        constant[cols] = np.ptp(ll, axis=1) == 0
+        out["good_k"] = float(loo.good_k)  # min(1 - 1/log10(S), 0.7) (Vehtari et al. 2024)
+        out["elpd"][cols] = loo.loo_i.values
+        out["k"][cols] = loo.pareto_k.values
+        out["lppd"][cols] = special.logsumexp(ll, axis=1) - np.log(samples)
+        out["constant"][cols] = np.ptp(ll, axis=1) == 0
         y_new = _new_group_replicates(idata, groups, pit_draws, rng)
         if y_new is None:
-            pit_possible = False
+            out["pit_possible"] = False
             continue
         y_obs = y_all[groups]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             log_w, _ = az.psislw(-ll[:, pit_draws], reff)
-            pit_at[cols] = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
-            pit_below[cols] = np.asarray(
+            out["at"][cols] = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
+            out["below"][cols] = np.asarray(
                 az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w)
             )
-    pareto_k[constant] = np.nan  # undefined: every draw gives the same value
-    high = constant | ~(pareto_k <= good_k)
-    elpd_used = elpd_psis.copy()
-    method = np.array(["psis"] * len(seen), dtype=object)
-    exact_col = np.full(len(seen), np.nan)
-    notes: list[str] = []
-    model = attr(idata, "model")
-    engine = attr(idata, "engine")
-    # constant ratios (no pooling): the exact value is PSIS's own, so it is always used
+    return out
+
+
+def _refit_choice(pareto_k, high, constant, settings: CheckSettings, notes: list) -> np.ndarray:
+    """The groups to give exact values: the worst high-k ones (up to the limit), and every
+    constant-ratio group (no pooling: the exact value is PSIS's own, so it is always used)."""
     wanted = np.flatnonzero(high & ~constant)
     if len(wanted) > settings.refit_limit:
         order = np.argsort(-pareto_k[wanted])
@@ -331,7 +319,36 @@ def leave_one_group_out(
             " their PSIS values."
         )
         wanted = wanted[order[: settings.refit_limit]]
-    wanted = np.union1d(wanted, np.flatnonzero(constant))
+    return np.union1d(wanted, np.flatnonzero(constant))
+
+
+def leave_one_group_out(
+    idata, settings: CheckSettings | None = None, rng: np.random.Generator | None = None
+) -> GroupLoo:
+    """PSIS-LOO over groups on ``y_group``, exact values for high-k groups where cheap, LOO-PIT."""
+    settings = (settings or CheckSettings()).validate()
+    rng = rng if rng is not None else np.random.default_rng(_seed(idata, settings))
+    data = counts_of(idata)
+    post = idata.posterior
+    samples = int(post.sizes["chain"] * post.sizes["draw"])
+    seen = np.flatnonzero(data.trials > 0)
+    why = _unavailable(idata, samples, seen)
+    if why is not None:
+        # ArviZ's own k threshold is read from its PSIS-LOO result, which is not computed here
+        return GroupLoo(pd.DataFrame(columns=GROUP_COLUMNS), np.nan, np.nan, np.nan, samples,
+                        float("nan"), len(seen), [why], available=False)
+    psis = _psis_pass(idata, seen, samples, settings, rng)
+    elpd_psis, pareto_k, lppd, constant = psis["elpd"], psis["k"], psis["lppd"], psis["constant"]
+    pit_below, pit_at, good_k = psis["below"], psis["at"], psis["good_k"]
+    pareto_k[constant] = np.nan  # undefined: every draw gives the same value
+    high = constant | ~(pareto_k <= good_k)
+    elpd_used = elpd_psis.copy()
+    method = np.array(["psis"] * len(seen), dtype=object)
+    exact_col = np.full(len(seen), np.nan)
+    notes: list[str] = []
+    model = attr(idata, "model")
+    engine = attr(idata, "engine")
+    wanted = _refit_choice(pareto_k, high, constant, settings, notes)
     exact = exact_leave_one_out(idata, seen[wanted]) if len(wanted) else None
     if exact is not None:
         exact_col[wanted] = exact["elpd_exact"].to_numpy()
@@ -349,7 +366,7 @@ def leave_one_group_out(
         )
     u = rng.uniform(size=len(seen))
     pit = pit_below + u * (pit_at - pit_below)
-    if not pit_possible:
+    if not psis["pit_possible"]:
         notes.append(f"LOO-PIT is not available for model {model!r}.")
     table = pd.DataFrame(
         {
