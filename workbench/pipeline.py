@@ -20,7 +20,13 @@ from .analysis import partitioned
 from .analysis import verify as verification
 from .analysis.casemix import adjusted_draws, adjusted_ranking_columns, case_mix_tables
 from .analysis.checks import check_posterior
-from .analysis.diagnostics import MISFIT, diagnose, first_remedy_settings, include_checks
+from .analysis.diagnostics import (
+    MISFIT,
+    after_retry,
+    diagnose,
+    first_remedy_settings,
+    include_checks,
+)
 from .analysis.draws import group_draws
 from .analysis.effects import effects_table
 from .analysis.predictions import default_seed, predict
@@ -368,6 +374,8 @@ def fit_run(source, settings: FitSettings, client=None) -> Run:
             record_parts["retry"] = {"applied": said, "first_reasons": diagnostics.reasons}
             estimator = fit_model(loaded, settings)
             diagnostics = diagnose(estimator.idata_)
+            if not diagnostics.ready:  # settings did what they could: change the model
+                after_retry(diagnostics, estimator.idata_, said)
     level = settings["level"]
     estimates, scored = summarise(estimator, settings, client)
     run = Run(

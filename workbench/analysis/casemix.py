@@ -79,7 +79,8 @@ def observed_expected(observed, expected, level: float) -> pd.DataFrame:
 
 
 def case_mix_tables(idata, level: float = 0.95) -> dict[str, pd.DataFrame]:
-    """adjusted_rates.csv (one row per group) and oe_funnel_curve.csv, or {} without case mix."""
+    """The adjusted-rates table (one row per group) and the O/E funnel curve, or {} without
+    case mix."""
     if not has_case_mix(idata):
         return {}
     names = idata.posterior["group"].values.astype(str)
@@ -123,6 +124,6 @@ def case_mix_tables(idata, level: float = 0.95) -> dict[str, pd.DataFrame]:
 
 
 def adjusted_ranking_columns(table: pd.DataFrame, ranks: pd.DataFrame) -> pd.DataFrame:
-    """adjusted_rates.csv with the rank interval of the adjusted rate beside each group."""
+    """The adjusted-rates table with the rank interval of the adjusted rate beside each group."""
     keep = [c for c in ("group", "rank_median", "rank_lower", "rank_upper") if c in ranks]
     return table.merge(ranks[keep], on="group", how="left") if len(keep) > 1 else table

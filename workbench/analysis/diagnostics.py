@@ -268,8 +268,11 @@ def remedies_for(reasons: list[dict], idata) -> list[str]:
     checks = {r["check"] for r in reasons}
     out: list[str] = []
     model = attr(idata, "model")
-    if checks & {"divergences"}:
+    accept = float(attr(idata, "target_accept", 0.0) or 0.0)
+    if checks & {"divergences"} and accept < HIGH_ACCEPT:
         out.append("raise the target acceptance (--target-accept 0.99) so NUTS takes smaller steps")
+    elif checks & {"divergences"}:  # small steps were already taken: the model must change
+        out.extend(model_remedies(idata))
     if checks & {"R-hat", "bulk ESS", "tail ESS", "E-BFMI"}:
         draws = int(idata.posterior.sizes["draw"])
         tune = int(attr(idata, "tune", draws) or draws)
@@ -287,7 +290,53 @@ def remedies_for(reasons: list[dict], idata) -> list[str]:
                    " or more)")
     if checks & {"density at the grid edge", "change of posterior means under refinement"}:
         out.append("the grid could not be made fine or wide enough; cross-check with --engine mcmc")
+    return list(dict.fromkeys(out))
+
+
+#: a target acceptance at or above this is as small a step as a remedy suggests
+HIGH_ACCEPT = 0.99
+
+
+def model_remedies(idata) -> list[str]:
+    """What to change in the model or the data when sampler settings have done what they can."""
+    model = attr(idata, "model")
+    out = []
+    if attr(idata, "engine") == "latent":
+        out.append("use the collapsed engine (--engine mcmc), which integrates the group"
+                   " log-odds out and has no funnel between them and their spread")
+    if model in ("logit-normal", "nested"):
+        spread = ("the between-parent sd (--tau-prior 0.5) and the between-group sd"
+                  " (--sigma-prior 0.5)" if model == "nested" else
+                  "the between-group sd (--sigma-prior 0.5)")
+        out.append(f"change the model: a tighter prior on {spread} when the data say little"
+                   " about the spread")
+        out.append("change the data: check the covariates for a level or value where every"
+                   " trial succeeds or every trial fails (separation) and for columns that"
+                   " say the same thing twice; merge sparse levels, or drop a covariate")
+    if model == "nested":
+        out.append("change the data: merge parents with one or two groups, or fit the"
+                   " logit-normal model without parents (--model logit-normal)")
+    if model == "beta-binomial":
+        out.append("use the exact engine, which this model has (--engine exact)")
+    out.append("compare other pooling choices (workbench compare) and report the one whose"
+               " sampler and checks pass")
     return out
+
+
+def after_retry(diagnostics: Diagnostics, idata, applied: str) -> Diagnostics:
+    """Remedies after a retry that still fails: never what was just done, the model first.
+
+    ``applied`` is the retry's sentence ("retried with --target-accept 0.99"). A remedy
+    whose settings the retry already applied is dropped; what to change in the model or the
+    data comes first.
+    """
+    done = applied.removeprefix("retried with ")
+    kept = [r for r in diagnostics.remedies
+            if not any(flag in r for flag in done.split(" --") if flag)
+            and not r.startswith(("raise the target acceptance", "run longer", "more tuning"))]
+    first = [r for r in model_remedies(idata) if r not in kept]
+    diagnostics.remedies = first + kept
+    return diagnostics
 
 
 def first_remedy_settings(diagnostics: Diagnostics, settings: dict) -> tuple[dict, str] | None:

@@ -33,7 +33,7 @@ def _source_of(column: str, coding: dict) -> tuple[str, str, str, str]:
 
 
 def effects_table(idata, coding: dict | None, level: float = 0.95) -> pd.DataFrame | None:
-    """effects.csv, or None when the fit has no covariates.
+    """The effects table (odds ratios), or None when the fit has no covariates.
 
     ``coding`` is the input's record of how each covariate was coded (run.json's
     ``input.covariate_coding``); without it every column reads as numeric.

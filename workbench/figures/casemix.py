@@ -1,4 +1,4 @@
-"""The observed/expected funnel of a risk-adjusted fit, drawn from adjusted_rates.csv."""
+"""The observed/expected funnel of a risk-adjusted fit, drawn from the adjusted-rates table."""
 
 from __future__ import annotations
 
@@ -13,8 +13,8 @@ def plot_oe_funnel(table: pd.DataFrame, curve: pd.DataFrame | None = None, *,
                    ax: Axes | None = None, label: int = 4) -> Axes:
     """O/E against the expected count, with 95% and 99.8% control limits around 1.
 
-    ``table`` is adjusted_rates.csv (group, expected, observed_expected, oe_outside_95,
-    oe_outside_998); ``curve`` is oe_funnel_curve.csv (expected and the four limits).
+    ``table`` is the adjusted-rates table (group, expected, observed_expected, oe_outside_95,
+    oe_outside_998); ``curve`` the O/E funnel curve table (expected and the four limits).
     """
     _require(table, ["group", "expected", "observed_expected"], "plot_oe_funnel")
     ax = _new_axes(ax, (7.2, 4.9))

@@ -1,7 +1,7 @@
 """The report's part on covariates: effects as odds ratios, and the risk-adjusted comparison.
 
-Shown in section 2 (effects, from effects.csv) and in its own section before the cautions
-(adjusted rates, observed/expected and their funnel, from adjusted_rates.csv). Values are the
+Shown in section 2 (effects, from the effects table) and in its own section before the cautions
+(adjusted rates, observed/expected and their funnel, from the adjusted-rates table). Values are the
 tables' values, formatted; nothing is computed. With covariates the cautions gain the
 case-mix caution naming them.
 """
@@ -13,7 +13,7 @@ from ..io.runfolder import FILES, FolderContents
 from ._format import page_table
 from .sections import CAUTIONS, SHORT_ROWS
 
-#: effects.csv columns shown, with their labels
+#: the effects table's columns shown, with their labels
 EFFECT_LABELS = {
     "term": "covariate", "level": "level", "reference": "against",
     "odds_ratio_median": "odds ratio",
