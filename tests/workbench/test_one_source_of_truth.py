@@ -60,6 +60,7 @@ def test_the_same_bad_number_reads_the_same_in_every_command(reported, capsys):
     assert err == ["error: --level 1.5: must be a number in (0, 1); see 'workbench rank --help'"]
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 def test_a_closed_pipe_ends_quietly_and_the_folder_is_complete(tmp_path):
     out = tmp_path / "run"
     command = (f"{sys.executable} -m workbench.cli fit {api.demo_data_path()}"
@@ -89,6 +90,7 @@ def test_results_are_small_in_a_notebook():
     assert len(run.predict(trials=10)) == 65  # 64 branches and the new group
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 def test_a_users_models_py_does_not_shadow_the_model_layer(tmp_path):
     (tmp_path / "models.py").write_text("raise SystemExit('the user models.py was imported')\n")
     (tmp_path / "models").mkdir()

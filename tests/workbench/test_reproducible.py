@@ -43,6 +43,7 @@ def _twice(tmp_path, extra):
     return outs
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 def test_exact_engine_same_seed_same_bytes(tmp_path):
     (c0, a), (c1, b) = _twice(tmp_path, [])
     assert c0 == c1

@@ -28,6 +28,7 @@ def csv(tmp_path, rows, header="group,successes,trials"):
     return path
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 def test_demo_writes_the_run_folder(tmp_path, capsys):
     out = tmp_path / "demo"
     assert main(["demo", "--out", str(out), "--seed", "3"]) == 0

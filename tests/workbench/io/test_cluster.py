@@ -65,6 +65,7 @@ def _same(a, b) -> None:
     assert a.notes == b.notes
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 @pytest.mark.parametrize("suffix", [".csv", ".parquet"])
 def test_event_log_on_the_cluster_equals_pandas_duckdb_and_groupby(tmp_path, client, suffix,
                                                                    monkeypatch):
@@ -117,6 +118,7 @@ def test_bad_rows_in_several_partitions_give_the_pandas_readers_message(tmp_path
     assert "\n" not in str(on_cluster.value) and "1 more" in str(on_cluster.value)
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 def test_the_dask_fit_equals_the_single_machine_fit(tmp_path, client, capsys):
     path = tmp_path / "visits.csv"
     _events_frame().to_csv(path, index=False)

@@ -434,6 +434,7 @@ def _check_page(page, errors, others, dialogs, query: str) -> None:
     assert dialogs == []
 
 
+@pytest.mark.slow  # a whole process or several fits: seconds (iterate with -m 'not slow')
 @pytest.mark.browser
 def test_reports_in_headless_chromium(run_folder, tmp_path):
     if not CHROMIUM.exists():
