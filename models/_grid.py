@@ -143,7 +143,11 @@ class GridPosterior:
         mu, kappa, w = self.points(stride)
         order = np.argsort(w)[::-1]
         keep = order[: int(np.searchsorted(np.cumsum(w[order]), mass)) + 1]
-        pairs, index = np.unique(np.stack([successes, trials], axis=1), axis=0, return_inverse=True)
+        # one int64 key per (successes, trials) pair: a 1-D unique, far faster than axis=0
+        y, n = np.asarray(successes, dtype=np.int64), np.asarray(trials, dtype=np.int64)
+        base = int(y.max(initial=0)) + 1
+        keys, index = np.unique(n * base + y, return_inverse=True)
+        pairs = np.stack([keys % base, keys // base], axis=1)
         coarse = None
         if quantile_stride and len(self.u) > 2 * quantile_stride:
             coarse = self.mixture(
