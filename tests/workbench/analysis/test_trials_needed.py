@@ -76,20 +76,28 @@ def test_the_groups_zig_zag(table):
     assert zig >= 3
 
 
-def test_search_from_a_guess_finds_what_plain_bisection_finds():
-    # the guess only saves work: any guess, even far off or outside [lo, hi], gives the same
-    # threshold as plain bisection (checked on random monotone step predicates)
-    from workbench.analysis.decisions import _smallest_true, _smallest_true_near
+def test_skipping_scan_finds_the_last_short_m_of_the_every_m_brute_force():
+    # the bounded-skip scan (decisions._last_short) against the brute force above, on
+    # posteriors of several sizes around the target (scipy.stats enumerates every m and y)
+    from workbench.analysis.decisions import _last_short
 
-    rng = np.random.default_rng(11)
-    hi = rng.integers(1, 5000, size=2000)
-    lo = np.zeros_like(hi)
-    answer = (rng.uniform(size=hi.size) * (hi + 1)).astype(np.int64)  # hi itself included
+    rng = np.random.default_rng(7)
+    size = rng.uniform(5, 300, 12)
+    mean = TARGET + rng.uniform(-0.08, 0.08, 12)
+    a, b = mean * size, (1 - mean) * size
+    horizon = np.full(12, 400)
+    got = _last_short(a, b, horizon, TARGET, CHANCE)
+    for i in range(12):
+        below = np.flatnonzero(brute_chances(a[i], b[i], 400, TARGET) < CHANCE)
+        assert got[i] == (int(below[-1]) + 1 if below.size else 0)
 
-    def pred(y):
-        return y >= answer
 
-    for guess in (answer, answer + rng.integers(-40, 40, size=hi.size),
-                  rng.integers(-10_000, 10_000, size=hi.size), np.zeros_like(hi), hi + 7):
-        np.testing.assert_array_equal(_smallest_true_near(pred, guess, lo, hi),
-                                      _smallest_true(pred, lo, hi))
+@pytest.mark.parametrize("a,b", [(3.0, 6.0), (0.5, 0.7), (1.0, 1.0), (40.0, 200.0), (0.6, 9.0)])
+def test_pmf_ceiling_bounds_the_largest_betabinomial_probability(a, b):
+    # scipy.stats.betabinom over every y: the ceiling is the maximum (rounded up by 1e-9)
+    from workbench.analysis.decisions import pmf_ceiling
+
+    for m in (1, 2, 7, 50, 333):
+        top = stats.betabinom.pmf(np.arange(m + 1), m, a, b).max()
+        got = float(pmf_ceiling(np.array([a]), np.array([b]), np.array([m]))[0])
+        assert top <= got <= top * (1 + 1e-8) + 1e-14
