@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._grid import V_BOUNDS, HyperPrior
+from ._grid import HyperPrior
 from .exceptions import SamplingError
 
 
@@ -91,12 +91,7 @@ def sample_hyper(
     pairs, counts = pairs[seen], counts[seen]
     with pm.Model():
         mu = pm.Beta("mu", prior.mu_a, prior.mu_b)
-        # the same space as the exact engine: 1e-6 <= kappa <= 1e8 (V_BOUNDS), past which the
-        # Beta-binomial probability loses accuracy; the prior is truncated there, not clipped
-        log_kappa = pm.TruncatedNormal(
-            "log_kappa", np.log(prior.kappa_median), prior.kappa_log_sd,
-            lower=V_BOUNDS[0], upper=V_BOUNDS[1],
-        )
+        log_kappa = pm.Normal("log_kappa", np.log(prior.kappa_median), prior.kappa_log_sd)
         kappa = pm.math.exp(log_kappa)
         if len(pairs):
             dist = pm.BetaBinomial.dist(n=pairs[:, 1], alpha=mu * kappa, beta=(1 - mu) * kappa)

@@ -47,15 +47,16 @@ class BetaMixturePosteriors:
         pair_successes: np.ndarray,
         pair_trials: np.ndarray,
         index: np.ndarray,
+        quantile_source: BetaMixturePosteriors | None = None,
     ) -> None:
         self.weights = weights / weights.sum()
+        self.quantile_source = quantile_source
         self.a = a
         self.b = b
         self.y = pair_successes.astype(float)
         self.n = pair_trials.astype(float)
         self.index = index
-        self._quantiles: dict[float, np.ndarray] = {}  # level -> per-pair quantile
-        cells = len(self.y) * len(self.weights)
+        cells = len(self.y) * len((quantile_source or self).weights)
         self.exact_quantiles = cells <= EXACT_QUANTILE_CELLS
 
     def _chunks(self):
@@ -114,73 +115,28 @@ class BetaMixturePosteriors:
     def sf(self, x: float) -> np.ndarray:
         return 1.0 - self.cdf(x)
 
-    def ppf(self, q: float, *, tol: float = 1e-7, max_iter: int = 200) -> np.ndarray:
-        """Exact quantiles of every group's mixture (solved once per level, then kept)."""
-        q = float(q)
-        if q not in self._quantiles:
-            self._quantiles[q] = self._pair_ppf(q, tol=tol, max_iter=max_iter)
-        return self._quantiles[q][self.index]
-
-    def _pair_ppf(
-        self, q: float, *, start: np.ndarray | None = None, tol: float = 1e-7, max_iter: int = 200
-    ) -> np.ndarray:
-        """Safeguarded Newton on the full mixture CDF (scipy.special.betainc), per unique pair.
-
-        Starts from ``start`` or the moment-matched Beta's quantile; each chunk of pairs keeps
-        its log Beta functions, so a Newton step costs one betainc per pair-component.
-        """
-        if start is None:
-            m1, var = self._pair_moments()
-            var = np.maximum(var, 1e-300)
-            common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
-            start = stats.beta.ppf(q, m1 * common, (1 - m1) * common)
-        x_all = np.clip(np.asarray(start, dtype=float), 1e-300, 1 - 1e-16)
-        out = np.empty(len(self.y))
-        for sl, alpha, beta in self._chunks():
-            out[sl] = _newton(alpha, beta, self.weights, x_all[sl], q, tol, max_iter)
-        return out
-
-
-def _newton(alpha, beta, w, x, q, tol, max_iter):
-    """Quantile q of sum_p w_p Beta(alpha_ip, beta_ip) for every row i (bracketed Newton).
-
-    A row is done when its Newton step is below ``tol`` times its distance to the nearer end
-    of (0, 1) and 1e-7 of its bracket's start; the step is taken (the error after it is of
-    the order of the step squared).
-    """
-    log_beta = special.betaln(alpha, beta)
-    x = x.copy()
-    lo = np.full_like(x, 1e-300)
-    hi = np.full_like(x, 1 - 1e-16)
-    act = np.arange(len(x))
-    for _ in range(max_iter):
-        if not len(act):
-            break
-        a, b, xa = alpha[act], beta[act], x[act]
-        f = special.betainc(a, b, xa[:, None]) @ w - q
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            logpdf = (a - 1) * np.log(xa)[:, None] + (b - 1) * np.log1p(-xa)[:, None]
-            pdf = np.exp(logpdf - log_beta[act]) @ w
-        lo[act] = np.where(f < 0, xa, lo[act])
-        hi[act] = np.where(f >= 0, xa, hi[act])
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            new = xa - f / np.maximum(pdf, 1e-300)
-        outside = (new < lo[act]) | (new > hi[act]) | ~np.isfinite(new)
-        hit = np.abs(f) < 1e-15  # solved: keep x (a bisection from here would undo it)
-        newton = ~outside & ~hit
-        new = np.where(outside, _middle(lo[act], hi[act]), new)
-        new = np.where(hit, xa, new)
-        scale = np.minimum(xa, 1 - xa)
-        done = hit | (newton & (np.abs(new - xa) < tol * scale)) | (hi[act] - lo[act] < 1e-3 * tol * scale)
-        x[act] = new
-        act = act[~done]
-    return x
-
-
-def _middle(lo, hi):
-    """Bisection point: geometric toward 0 or 1 when the bracket spans decades there."""
-    geo_low = np.sqrt(lo * hi)
-    geo_high = 1 - np.sqrt((1 - lo) * (1 - hi))
-    mid = 0.5 * (lo + hi)
-    mid = np.where((hi <= 0.5) & (hi > 4 * lo), geo_low, mid)
-    return np.where((lo >= 0.5) & (1 - lo > 4 * (1 - hi)), geo_high, mid)
+    def ppf(self, q: float, *, tol: float = 1e-10, max_iter: int = 60) -> np.ndarray:
+        """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile."""
+        if self.quantile_source is not None:
+            return self.quantile_source.ppf(q, tol=tol, max_iter=max_iter)
+        m1, var = self._pair_moments()
+        var = np.maximum(var, 1e-300)
+        common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
+        x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
+        lo = np.zeros_like(x)
+        hi = np.ones_like(x)
+        active = np.ones(len(x), dtype=bool)
+        for _ in range(max_iter):
+            f = self._pair_cdf(x) - q
+            lo = np.where(active & (f < 0), x, lo)
+            hi = np.where(active & (f >= 0), x, hi)
+            step = f / np.maximum(self._pair_pdf(x), 1e-300)
+            new = x - step
+            outside = (new < lo) | (new > hi) | ~np.isfinite(new)
+            new = np.where(outside, 0.5 * (lo + hi), new)
+            new = np.where(active, new, x)
+            active &= (np.abs(new - x) >= tol) & (hi - lo >= tol) & (np.abs(f) > 1e-14)
+            x = new
+            if not active.any():
+                break
+        return x[self.index]

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 
 #: Columns of summary(), in order; later tables append their own.
 from ._estimator import (  # noqa: F401  (SUMMARY_COLUMNS is re-exported)
@@ -13,21 +12,11 @@ from ._estimator import (  # noqa: F401  (SUMMARY_COLUMNS is re-exported)
     _check_sampler,
     _Estimator,
 )
-from ._grid import REFINE_TOLERANCE, HyperPrior, fit_grid
+from ._grid import HyperPrior, fit_grid
 from ._hierarchies import LogitNormal, Nested
 from ._mcmc import SamplerSettings, sample_hyper
 from ._mixture import BetaPosteriors
 from .exceptions import ParameterError
-
-#: population() rows of the beta-binomial model, in order
-POPULATION_LABELS = {
-    "mu": "population_mean",
-    "kappa": "concentration",
-    "between_group_sd": "between_group_sd",
-    "theta_new": "new_group_rate",
-}
-#: kappa's mean is called cap-dependent past this relative change under a 10x lower cap
-KAPPA_CAP_DEPENDENCE = 0.10
 
 
 class _Conjugate(_Estimator):
@@ -192,11 +181,8 @@ class BetaBinomial(_Estimator):
             extra = {
                 "log_marginal_likelihood": grid.log_marginal_likelihood,
                 "grid_points": int(grid.log_density.size),
-                "grid_components": int(len(self.exact_.weights)),
                 "grid_edge_density": grid.edge_density,
                 "grid_refinement_change": grid.refinement_change,
-                "grid_refinements": int(grid.refinements),
-                "grid_tolerance": REFINE_TOLERANCE,
                 "interval_method": "exact" if self.exact_.exact_quantiles else "draws",
             }
         else:
@@ -223,33 +209,6 @@ class BetaBinomial(_Estimator):
         sd = np.sqrt(mu * (1 - mu) / (kappa + 1))
         hyper = {"mu": mu, "kappa": kappa, "between_group_sd": sd}
         return theta, theta_new, hyper, extra, stats_
-
-    def population(self, level: float = 0.95) -> pd.DataFrame:
-        """Population quantities; the exact engine's by quadrature on its grid, not draws.
-
-        kappa's posterior is often heavy-tailed up to its cap (1e8): its mean is then set by
-        the cap more than by the data, so read the median and interval; ``kappa_mean_note``
-        says when the mean would move by more than 10% were the cap ten times lower.
-        """
-        if self._engine_used != "exact" or getattr(self, "grid_", None) is None:
-            return super().population(level)
-        level = _check_level(level)
-        values = self.grid_.population(level)
-        rows = [(POPULATION_LABELS[name], name, *(float(values[name][k]) for k in
-                 ("mean", "median", "lower", "upper"))) for name in POPULATION_LABELS]
-        table = pd.DataFrame(rows, columns=["quantity", "parameter", "mean", "median", "lower",
-                                            "upper"])
-        table.attrs["kappa_mean_cap_dependence"] = float(values["kappa"]["cap_dependence"])
-        return table
-
-    def kappa_mean_note(self) -> float | None:
-        """How much kappa's mean depends on its cap (relative change were the cap ten times
-        lower), when that exceeds 10%; ``None`` otherwise (or for the MCMC engine)."""
-        grid = getattr(self, "grid_", None) if self._engine_used == "exact" else None
-        if grid is None:
-            return None
-        share = float(grid.population(0.95)["kappa"]["cap_dependence"])
-        return share if share > KAPPA_CAP_DEPENDENCE else None
 
     def _shrinkage(self) -> np.ndarray:
         n = self.data_.trials.astype(float)

@@ -216,8 +216,7 @@ def spread_note(estimator, level: float) -> str | None:
     seen = trials[trials > 0]
     if not len(seen):
         return None
-    pop = estimator.population(level).set_index("parameter")  # by quadrature when exact
-    low = float(pop.loc["kappa", "lower"])
+    low = float(np.quantile(post["kappa"].values, (1 - level) / 2))
     median_trials = float(np.median(seen))
     if low <= median_trials:
         return None
@@ -225,19 +224,6 @@ def spread_note(estimator, level: float) -> str | None:
         "no clearly detectable between-group spread: even the low end of the concentration"
         f" interval ({low:.3g}) outweighs the median group's {median_trials:.0f} trials, so"
         " every typical group is pulled more than halfway to the population mean."
-    )
-
-
-def kappa_mean_note(estimator, level: float) -> str | None:
-    """Say when kappa's posterior mean is set by its cap more than by the data (exact engine)."""
-    share = getattr(estimator, "kappa_mean_note", lambda: None)()
-    if share is None:
-        return None
-    pop = estimator.population(level).set_index("parameter").loc["kappa"]
-    return (
-        f"the concentration's posterior mean ({pop['mean']:.3g}) depends on its cap of 1e8: it"
-        f" would move by {100 * share:.0f}% were the cap ten times lower; read its median"
-        f" ({pop['median']:.3g}) and interval instead."
     )
 
 
@@ -407,9 +393,9 @@ def fit_run(source, settings: FitSettings, client=None) -> Run:
     if client is not None:
         read = "this machine" if isinstance(source, LoadedData) else "cluster"
         run.record_parts["cluster"] = {**cluster.describe(client), "read_on": read, **scored}
-    for note in (spread_note(estimator, level), kappa_mean_note(estimator, level)):
-        if note:
-            messages.append(note)
+    note = spread_note(estimator, level)
+    if note:
+        messages.append(note)
     if hasattr(estimator, "parent_summary"):
         run.tables["parents"] = estimator.parent_summary(level)
     run.tables["population_draws"] = population_draws(run.idata)

@@ -63,7 +63,7 @@ class Thresholds:
     ebfmi: float = 0.3
     treedepth_share: float = 0.01
     grid_edge_density: float = 1e-8
-    grid_refinement_change: float = 1e-4  # the exact engine's stated tolerance (README)
+    grid_refinement_change: float = 1e-6
     independent_draws: int = 400
     replicates: int = 400
 
