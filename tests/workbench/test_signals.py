@@ -69,13 +69,21 @@ def _wait_for(moment: str, proc: subprocess.Popen, parent: Path, limit: float = 
         time.sleep(0.005)
 
 
+#: appended to stderr when the process ended before the test could signal it: the folder
+#: must then be the complete new one, and no interruption can be asserted
+SIGNAL_NOT_SENT = "\n[test: the process finished before the signal was sent]"
+
+
 def _run_and_kill(argv, parent: Path, sig: str, moment: str):
     proc = subprocess.Popen(_workbench() + argv, cwd=parent, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     _wait_for(moment, proc, parent)
-    if proc.poll() is None:
+    sent = proc.poll() is None
+    if sent:
         proc.send_signal(SIGNALS[sig])
     out, err = proc.communicate(timeout=300)
+    if not sent:  # it finished before the signal could be sent (a very loaded machine)
+        err = err + SIGNAL_NOT_SENT
     return proc.returncode, err
 
 
@@ -92,7 +100,7 @@ def _check(parent: Path, folder: Path, before: dict, sig: str, code: int, err: s
     """``caught``: the signal came while the staging folder was being filled (the report
     keeps it open for seconds), so the process must have been interrupted, not finished."""
     assert "Traceback" not in err, err
-    if caught:
+    if caught and SIGNAL_NOT_SENT not in err:
         assert code == EXPECTED_CODE[sig], (code, err)
     state = _old_or_complete_new(folder, before)
     if code == EXPECTED_CODE[sig]:
