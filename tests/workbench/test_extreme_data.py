@@ -78,3 +78,19 @@ def test_rates_at_exactly_zero_and_one_mirror_each_other():
     np.testing.assert_allclose(a["lower"], 1 - b["upper"], atol=1e-6)
     np.testing.assert_allclose(a["prob_above_target"], 1 - b["prob_above_target"], atol=1e-9)
     assert (a["posterior_mean"] > 0).all() and (a["upper"] < 1).all()
+
+
+@pytest.mark.parametrize("top", [10**3, 10**15], ids=["small trials", "1e15 trials"])
+def test_distinct_pairs_are_the_2d_unique_even_where_one_key_would_overflow(top):
+    # the exact engine computes once per distinct (successes, trials) pair; its one-key
+    # shortcut must give numpy's own 2-D unique, and fall back where trials x successes
+    # would overflow int64 (a 1e15-trial group among small ones)
+    from workbench.models._grid import distinct_pairs
+
+    rng = np.random.default_rng(4)
+    n = np.append(rng.integers(1, 50, 300), top)
+    y = np.append(rng.integers(0, 50, 300) % (n[:300] + 1), top // 3)
+    pairs, index = distinct_pairs(y, n)
+    want = np.unique(np.stack([y, n], axis=1), axis=0)
+    assert {tuple(p) for p in pairs} == {tuple(p) for p in want} and len(pairs) == len(want)
+    np.testing.assert_array_equal(pairs[index], np.stack([y, n], axis=1))
