@@ -25,6 +25,7 @@ import numpy as np
 from scipy import special
 
 from ._collapsed import _LOG_W, _T, _TANGENTS, GH_NODES
+from ._envelope import envelope_kernels
 from ._mcmc import SamplerSettings, run_nuts
 
 #: Most (draw x cell) values handled at once when summarising rates per draw.
@@ -134,6 +135,7 @@ def _loglik_kernel(njit, g_and_slope, mode):
 
 def _draw_kernel(njit, g_and_slope, mode):
     """Exact draws of each group's z by rejection under a tangent envelope."""
+    build, propose, height = envelope_kernels(njit)
 
     @njit
     def draws(y, n, m2, starts, s2, tangents, seed):  # pragma: no cover - compiled
@@ -162,39 +164,11 @@ def _draw_kernel(njit, g_and_slope, mode):
                     v3 = g_and_slope(tp[j], y, n, m, a, b, s)
                     gv[j] = v3[0]
                     gs[j] = v3[1]
-                lo[0] = -np.inf
-                hi[k - 1] = np.inf
-                for j in range(k - 1):
-                    cut = (gv[j + 1] - gv[j] + gs[j] * tp[j] - gs[j + 1] * tp[j + 1]) / (
-                        gs[j] - gs[j + 1])
-                    hi[j] = cut
-                    lo[j + 1] = cut
-                top = -np.inf
-                for j in range(k):
-                    anchor[j] = hi[j] if gs[j] > 0 else lo[j]
-                    aa = abs(gs[j])
-                    w = hi[j] - lo[j]
-                    lq = np.log(w) if aa * w < 1e-12 else np.log(-np.expm1(-aa * w)) - np.log(aa)
-                    log_mass[j] = gv[j] + gs[j] * (anchor[j] - tp[j]) + lq
-                    top = max(top, log_mass[j])
-                total = 0.0
-                for j in range(k):
-                    total += np.exp(log_mass[j] - top)
-                    cum[j] = total
+                total = build(tp, gv, gs, lo, hi, anchor, log_mass, cum)
                 while True:
                     proposals += 1
-                    u = np.random.random() * total  # noqa: NPY002
-                    j = 0
-                    while j < k - 1 and u > cum[j]:
-                        j += 1
-                    aa = abs(gs[j])
-                    w = hi[j] - lo[j]
-                    v = np.random.random()  # noqa: NPY002
-                    d = v * w if aa * w < 1e-12 else -np.log1p(v * np.expm1(-aa * w)) / aa
-                    z = anchor[j] - d if gs[j] > 0 else anchor[j] + d
-                    env = np.inf
-                    for jj in range(k):
-                        env = min(env, gv[jj] + gs[jj] * (z - tp[jj]))
+                    z = propose(gs, lo, hi, anchor, cum, total)
+                    env = height(z, tp, gv, gs)
                     if np.log(np.random.random()) < g_and_slope(z, y, n, m, a, b, s)[0] - env:  # noqa: NPY002
                         out[r, g] = z
                         break

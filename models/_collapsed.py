@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._envelope import envelope_kernels
 from ._mcmc import SamplerSettings, run_nuts
 
 #: Gauss-Hermite nodes (probabilists') for the integrated likelihood inside the sampler.
@@ -128,6 +129,7 @@ def _core_kernels(njit):
 
 def _draw_kernel(njit, g_and_slope, mode):
     """Exact draws of each group's standardised log-odds by tangent-envelope rejection."""
+    build, propose, height = envelope_kernels(njit)
 
     @njit
     def draws(y, n, m, s, tangents, seed):  # pragma: no cover - compiled
@@ -151,44 +153,11 @@ def _draw_kernel(njit, g_and_slope, mode):
             for j in range(k):
                 t[j] = zhat + reach * tangents[j]
                 gv[j], gs[j] = g_and_slope(t[j], yi, ni, mi, si)
-            lo[0] = -np.inf
-            hi[k - 1] = np.inf
-            for j in range(k - 1):
-                b = (gv[j + 1] - gv[j] + gs[j] * t[j] - gs[j + 1] * t[j + 1]) / (gs[j] - gs[j + 1])
-                hi[j] = b
-                lo[j + 1] = b
-            top = -np.inf
-            for j in range(k):
-                anchor[j] = hi[j] if gs[j] > 0 else lo[j]
-                a = abs(gs[j])
-                w = hi[j] - lo[j]
-                if a * w < 1e-12:
-                    lq = np.log(w)
-                else:
-                    lq = np.log(-np.expm1(-a * w)) - np.log(a)
-                log_mass[j] = gv[j] + gs[j] * (anchor[j] - t[j]) + lq
-                top = max(top, log_mass[j])
-            total = 0.0
-            for j in range(k):
-                total += np.exp(log_mass[j] - top)
-                cum[j] = total
+            total = build(t, gv, gs, lo, hi, anchor, log_mass, cum)
             while True:
                 proposals += 1
-                u = np.random.random() * total  # noqa: NPY002
-                j = 0
-                while j < k - 1 and u > cum[j]:
-                    j += 1
-                a = abs(gs[j])
-                w = hi[j] - lo[j]
-                v = np.random.random()  # noqa: NPY002
-                if a * w < 1e-12:
-                    d = v * w
-                else:
-                    d = -np.log1p(v * np.expm1(-a * w)) / a
-                z = anchor[j] - d if gs[j] > 0 else anchor[j] + d
-                env = np.inf
-                for jj in range(k):
-                    env = min(env, gv[jj] + gs[jj] * (z - t[jj]))
+                z = propose(gs, lo, hi, anchor, cum, total)
+                env = height(z, t, gv, gs)
                 val = g_and_slope(z, yi, ni, mi, si)[0]
                 if np.log(np.random.random()) < val - env:  # noqa: NPY002
                     out[i] = z

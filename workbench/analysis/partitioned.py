@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ..models import attr
+from ..models._grid import distinct_pairs
 
 #: Partitions per worker thread when none are asked for.
 PARTITIONS_PER_THREAD = 2
@@ -59,9 +60,7 @@ def score_on_cluster(client, estimator, level: float, target: float | None = Non
     ``estimator.summary(level, target=target)``; the record says how it was cut.
     """
     data = estimator.data_
-    pairs, index = np.unique(np.stack([data.successes, data.trials], axis=1), axis=0,
-                             return_inverse=True)
-    index = index.ravel()
+    pairs, index = distinct_pairs(data.successes, data.trials)
     if partitions is None:
         threads = int(sum(client.nthreads().values()))
         partitions = max(1, PARTITIONS_PER_THREAD * threads)

@@ -126,6 +126,15 @@ def _labelled(n: int, band: tuple | None, show: int) -> np.ndarray:
     return np.concatenate([idx[:show], idx[n - show :]])
 
 
+def row_axes(ax: Axes | None, n: int, show: int, every: int):
+    """The axes of a figure of ``n`` ordered rows, sized and styled, with the rows' places,
+    the band (or None) and which rows get a label (see :func:`row_positions`)."""
+    pos, band = row_positions(n, show, every=every)
+    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
+    _apply_style(ax)
+    return ax, pos, band, _labelled(n, band, show)
+
+
 def _band_note(ax: Axes, band: tuple | None, hidden: int, what: str = "groups") -> None:
     if band is None:
         return

@@ -16,8 +16,6 @@ from ._style import (
     _corner_note,
     _count,
     _draw_band,
-    _height,
-    _labelled,
     _legend_below,
     _line_width,
     _new_axes,
@@ -25,10 +23,9 @@ from ._style import (
     _rate_axis,
     _require,
     _row_labels,
-    _shown_rows,
     _spread_labels,
     _title,
-    row_positions,
+    row_axes,
 )
 
 # -- shrinkage ----------------------------------------------------------------------------------
@@ -189,13 +186,10 @@ def plot_intervals(
     _require(estimates, ["group", "posterior_mean", "lower", "upper"], "plot_intervals")
     table = estimates.sort_values(["posterior_mean", "group"], ascending=[False, True])
     n = len(table)
-    pos, band = row_positions(n, show, every=every)
-    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
-    _apply_style(ax)
+    ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["lower"].to_numpy(dtype=float)
     upper = table["upper"].to_numpy(dtype=float)
     mean = table["posterior_mean"].to_numpy(dtype=float)
-    idx = _labelled(n, band, show)
     if band is not None:
         mid = np.arange(show, n - show)
         _draw_band(
@@ -315,13 +309,10 @@ def plot_parents(parents: pd.DataFrame, *, level: float | None = None, ax: Axes 
     _require(parents, ["parent", "effect_mean", "effect_lower", "effect_upper"], "plot_parents")
     table = parents.sort_values(["effect_mean", "parent"], ascending=[False, True])
     n = len(table)
-    pos, band = row_positions(n, show, every=every)
-    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
-    _apply_style(ax)
+    ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["effect_lower"].to_numpy(dtype=float)
     upper = table["effect_upper"].to_numpy(dtype=float)
     mean = table["effect_mean"].to_numpy(dtype=float)
-    idx = _labelled(n, band, show)
     if band is not None:
         _draw_band(ax, lower, upper, mean, pos, np.arange(show, n - show),
                    colour=PALETTE["harbour"], alpha=min(0.5, 30 / max(n - 2 * show, 1)))

@@ -14,18 +14,15 @@ from ._style import (
     _corner_note,
     _count,
     _draw_band,
-    _height,
-    _labelled,
     _legend_below,
     _line_width,
     _new_axes,
     _rate_axis,
     _require,
     _row_labels,
-    _shown_rows,
     _spread_labels,
     _title,
-    row_positions,
+    row_axes,
 )
 
 # -- funnel -------------------------------------------------------------------------------------
@@ -240,13 +237,10 @@ def plot_ranks(
         k = int(ranks["k"].iloc[0]) if "k" in ranks.columns and n else 5
     k = max(0, min(int(k), n // 2))
     show = max(show, k)
-    pos, band = row_positions(n, show, every=every)
-    ax = _new_axes(ax, (7.2, _height(_shown_rows(n, show, band))))
-    _apply_style(ax)
+    ax, pos, band, idx = row_axes(ax, n, show, every)
     lo = table["rank_lower"].to_numpy(dtype=float)
     hi = table["rank_upper"].to_numpy(dtype=float)
     med = table["rank_median"].to_numpy(dtype=float)
-    idx = _labelled(n, band, show)
     colours = np.array([PALETTE["pewter"]] * n, dtype=object)
     colours[:k] = PALETTE["harbour"]
     if k:
