@@ -79,6 +79,7 @@ def test_grid_refinement_changes_means_by_less_than_1e6():
     assert base.edge_density < 1e-8
 
 
+@pytest.mark.slow
 @pytest.mark.reference
 def test_log_marginal_likelihood_matches_scipy_dblquad():
     # reference library: scipy.integrate.dblquad over (logit mu, log kappa) of the

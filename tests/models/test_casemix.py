@@ -28,6 +28,7 @@ def _log_integral_by_quad(y, n, m, s):
     return top + np.log(area) - 0.5 * np.log(2 * np.pi)
 
 
+@pytest.mark.slow
 def test_cell_likelihood_matches_quadrature_and_its_gradient_matches_differences():
     rng = np.random.default_rng(3)
     n = rng.integers(1, 80, size=9).astype(float)

@@ -39,6 +39,7 @@ CASES = [(y, n) for y, n in [(0, 5), (3, 10), (1, 1), (50, 100), (0, 30000), (1,
                                (10**6, 10**6), (5 * 10**5, 10**6)]]
 
 
+@pytest.mark.slow
 @pytest.mark.reference
 @pytest.mark.parametrize(("s", "tol"), [(1e-4, 1e-7), (0.05, 1e-7), (0.5, 1e-7), (1.0, 1e-6),
                                         (2.0, 3e-4), (3.0, 3e-3)])

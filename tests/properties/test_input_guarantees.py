@@ -102,6 +102,7 @@ def _check(rows, load):
     assert loaded.reconciliation["rows_used"] == len(rows)
 
 
+@pytest.mark.slow
 @settings(max_examples=EXAMPLES["csv"], deadline=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(_rows(text_cell))
@@ -116,6 +117,7 @@ def test_csv_tables_load_exactly_or_are_refused_in_one_line(rows):
     _check(rows, lambda: load_groups(path))
 
 
+@pytest.mark.slow
 @settings(max_examples=EXAMPLES["frame"], deadline=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(_rows(value_cell))
@@ -126,6 +128,7 @@ def test_dataframes_of_mixed_cells_load_exactly_or_are_refused(rows):
     _check(rows, lambda: load_groups(frame))
 
 
+@pytest.mark.slow
 @settings(max_examples=EXAMPLES["vector"], deadline=None)
 @given(st.lists(st.one_of(text_cell, st.text(max_size=5).map(lambda t: (t, "?"))),
                 min_size=1, max_size=30))

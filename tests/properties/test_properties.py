@@ -72,6 +72,7 @@ def _counts(spec):
     return GroupCounts([f"g{i}" for i in range(len(n))], y, n)
 
 
+@pytest.mark.slow
 @settings(max_examples=25, deadline=None)
 @given(counts_strategy)
 def test_exact_engine_invariants(spec):
@@ -91,6 +92,7 @@ def test_exact_engine_invariants(spec):
     assert (est <= np.maximum(raw, hi_mu) + 1e-9).all()
 
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None)
 @given(counts_strategy, st.randoms(use_true_random=False))
 def test_relabelling_groups_only_reorders_rows(spec, rnd):

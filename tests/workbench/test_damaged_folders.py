@@ -130,6 +130,7 @@ def test_not_a_run_folder_and_foreign_files(made, tmp_path, capsys):
     assert (folder / "notes.txt").read_text() == "mine"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("how", DAMAGE)
 @pytest.mark.parametrize("name", [f for f in FILES if f != "run.json"])
 @pytest.mark.parametrize("command", sorted(COMMANDS))

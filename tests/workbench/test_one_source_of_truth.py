@@ -30,6 +30,7 @@ def reported(tmp_path_factory, ):
     return folder
 
 
+@pytest.mark.slow
 def test_rank_with_a_new_target_rewrites_the_report_and_records_the_step(reported):
     page = (reported / FILES["report"]).read_text(encoding="utf-8")
     assert "--target 0.2" in page and "--target 0.08" not in page

@@ -7,6 +7,7 @@ is tested beside the code it lives in.
 from __future__ import annotations
 
 import ast
+import functools
 import re
 from pathlib import Path
 
@@ -126,8 +127,11 @@ def test_imports_only_point_down_the_stages():
     assert not wrong, "; ".join(sorted(wrong))
 
 
-def _code_strings(path: Path) -> list[str]:
-    """String constants of a module's code, docstrings left out (prose may name files)."""
+@functools.cache
+def _code_strings(path: Path) -> tuple[str, ...]:
+    """String constants of a module's code, docstrings left out (prose may name files).
+
+    Cached: the file-name test asks for every module once per file name."""
     tree = ast.parse(path.read_text(encoding="utf-8"))
     docs = set()
     for node in ast.walk(tree):
@@ -135,10 +139,10 @@ def _code_strings(path: Path) -> list[str]:
             body = node.body
             if body and isinstance(body[0], ast.Expr) and isinstance(body[0].value, ast.Constant):
                 docs.add(id(body[0].value))
-    return [
+    return tuple(
         n.value for n in ast.walk(tree)
         if isinstance(n, ast.Constant) and isinstance(n.value, str) and id(n) not in docs
-    ]
+    )
 
 
 @pytest.mark.parametrize("filename", sorted(

@@ -429,6 +429,7 @@ def folders(tmp_path_factory):
     return out
 
 
+@pytest.mark.slow
 def test_fit_records_checks_and_writes_them(folders):
     folder = folders["bb"]
     doc = json.loads((folder / CHECKS_FILE).read_text())
@@ -443,6 +444,7 @@ def test_fit_records_checks_and_writes_them(folders):
     assert {CHECKS_FILE, REPLICATES_FILE, GROUP_CHECKS_FILE} <= set(record["files"])
 
 
+@pytest.mark.slow
 def test_check_and_compare_updates_are_atomic(folders, tmp_path, monkeypatch):
     # A write that fails half-way leaves the earlier folder byte for byte, and no staging.
     import shutil

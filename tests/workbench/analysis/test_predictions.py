@@ -111,6 +111,7 @@ def _fit(data_csv, folder, model, engine, *extra):
     )
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("model, engine", MODELS)
 def test_cli_predict_every_model(data_csv, tmp_path, capsys, model, engine):
     folder = tmp_path / "run"

@@ -137,6 +137,7 @@ def target_runs():
     return runs
 
 
+@pytest.mark.slow
 def test_target_flags_false_share_within_level(target_runs):
     # Bayesian FDR (Newton et al. 2004; Mueller et al. 2004): averaged over simulated data
     # sets with known truth, the realised share of false flags stays at or below the level
@@ -374,6 +375,7 @@ def folders(data_csv, tmp_path_factory):
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("model", [m for m, _ in MODELS])
 def test_fit_writes_ranking_files(folders, model):
     folder = folders[model]
@@ -394,6 +396,7 @@ def test_fit_writes_ranking_files(folders, model):
     assert list(est.columns).count("prob_above_target") == 1
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("model", [m for m, _ in MODELS])
 def test_cli_rank_rewrites_folder(folders, model, capsys):
     folder = folders[model]
@@ -440,6 +443,7 @@ def test_cli_rank_compare_groups(folders, capsys):
     assert len(pair) == 6 and set(pair["group_a"]) == {"unit-001", "unit-004", "unit-009"}
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize(
     "argv, match",
     [
@@ -490,6 +494,7 @@ def test_cli_rank_on_mcmc_folder(data_csv, tmp_path, capsys):
     assert pd.read_csv(folder / "ranks.csv")["prob_best_k"].sum() == pytest.approx(2)
 
 
+@pytest.mark.slow
 def test_cli_rank_and_predict_on_not_final_run_exit_3(data_csv, tmp_path, capsys):
     # a run whose convergence verdict failed: files are written, nothing is final, exit 3
     folder = tmp_path / "run"

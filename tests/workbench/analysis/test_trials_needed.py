@@ -54,6 +54,7 @@ def table():
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("k", range(len(GROUPS)))
 def test_reported_m_is_where_the_chance_stays_up(table, k):
     a, b = GROUPS[k]
@@ -76,6 +77,7 @@ def test_the_groups_zig_zag(table):
     assert zig >= 3
 
 
+@pytest.mark.slow
 def test_skipping_scan_finds_the_last_short_m_of_the_every_m_brute_force():
     # the bounded-skip scan (decisions._last_short) against the brute force above, on
     # posteriors of several sizes around the target (scipy.stats enumerates every m and y)

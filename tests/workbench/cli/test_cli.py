@@ -56,6 +56,7 @@ def test_row_7_error_exits_2_and_writes_nothing(tmp_path, capsys):
     assert [p.name for p in tmp_path.iterdir()] == ["data.csv"]
 
 
+@pytest.mark.slow
 def test_fit_every_model_and_target(tmp_path):
     path = csv(tmp_path, [f"g{i},{i},{3 * i + 4}" for i in range(12)])
     for model in ("beta-binomial", "no-pooling", "complete-pooling"):

@@ -153,6 +153,7 @@ def _renders(artist) -> bytes:
     return buf.getvalue()
 
 
+@pytest.mark.slow
 def test_every_plot_returns_axes_or_figure_and_renders(tables):
     n, t = tables
     made = {

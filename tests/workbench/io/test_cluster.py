@@ -87,6 +87,7 @@ def test_event_log_on_the_cluster_equals_pandas_duckdb_and_groupby(tmp_path, cli
     assert got.counts.trials.tolist() == truth["size"].tolist()
 
 
+@pytest.mark.slow
 def test_partial_counts_with_repeats_and_words_equal_the_pandas_reader(tmp_path, client):
     rng = np.random.default_rng(8)
     names = [f"bay {i}" for i in rng.integers(0, 50, size=3_000)]

@@ -65,6 +65,7 @@ def test_size_limit_names_draws_that_fit(data, tmp_path, capsys, monkeypatch):
     assert started == [1]
 
 
+@pytest.mark.slow
 def test_tab_in_a_group_name_prints_no_font_warning(tmp_path, capsys):
     path = tmp_path / "d.csv"
     path.write_text('group,successes,trials\n"tab\there",3,10\nplain,4,12\nthird,1,9\n')

@@ -78,6 +78,7 @@ def html(run_folder) -> str:
     return path_of(run_folder, "report").read_text(encoding="utf-8")
 
 
+@pytest.mark.slow
 def test_report_has_every_section_and_the_verdict(html):
     for anchor in SECTION_IDS:
         assert f'id="{anchor}"' in html, anchor
@@ -174,6 +175,7 @@ def test_absent_tables_say_not_computed(run_folder, tmp_path):
     assert (path_of(bare, "figures") / "intervals.png").exists()
 
 
+@pytest.mark.slow
 def test_not_ready_run_says_so_in_red_words(run_folder, tmp_path):
     failed = tmp_path / "failed"
     shutil.copytree(run_folder, failed)
@@ -275,6 +277,7 @@ def test_reproduce_command_spells_every_kind_of_option():
     assert "--no-checks" in line and "'case mix'" in line
 
 
+@pytest.mark.slow
 def test_reproduce_section_lists_the_fit_and_every_later_step_in_order(run_folder, tmp_path):
     stepped = tmp_path / "stepped"
     shutil.copytree(run_folder, stepped)
@@ -376,6 +379,7 @@ def test_large_run_keeps_the_page_small(tmp_path):
     assert result.bytes < 1_500_000
 
 
+@pytest.mark.slow
 def test_staging_folder_is_named_by_its_final_place(run_folder, tmp_path):
     staging = tmp_path / ".run.x1.part"
     shutil.copytree(run_folder, staging)
@@ -464,6 +468,7 @@ def test_reports_in_headless_chromium(run_folder, tmp_path):
             browser.close()
 
 
+@pytest.mark.slow
 def test_a_misfit_run_is_named_misfit_not_a_convergence_failure(tmp_path):
     # issue 10: complete pooling on the demo's spread-out branches converges (exact engine)
     # but the predictive checks find the misfit; the banner must say so, not "READY" and not

@@ -44,6 +44,7 @@ def _rows(html: str) -> list[tuple[str, str]]:
             for cls, body in re.findall(r'<tr(?: class="([^"]*)")?>(.*?)</tr>', html, flags=re.S)]
 
 
+@pytest.mark.slow
 def test_flag_colour_follows_better_and_worse_not_the_side(lower_is_better):
     # with --better lower the high-complication clinics are above the target and worse: their
     # flag reads so and takes the "worse" colour; the old page coloured "above" blue always
@@ -81,6 +82,7 @@ def test_a_group_with_no_trials_reads_no_data_not_a_rank(lower_is_better):
     assert not re.search(r"\bNew\b", best_worst)  # not among the worst placed either
 
 
+@pytest.mark.slow
 def test_one_group_with_trials_makes_no_ranking(tmp_path, capsys):
     out = _fit(tmp_path, [("Only", 4, 30), ("Later", 0, 0)])
     html = path_of(out, "report").read_text(encoding="utf-8")
