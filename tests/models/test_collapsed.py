@@ -77,6 +77,7 @@ def test_mode_is_a_root_even_far_from_the_data():
     assert np.all(np.abs(grad) <= 1e-6 * (1 + np.abs(z)))
 
 
+@pytest.mark.slow
 @pytest.mark.reference
 @pytest.mark.parametrize(("y", "n", "m", "s"), [(3, 10, -1.0, 0.8), (0, 1000, 2.0, 3.0),
                                                 (900, 1000, 0.0, 0.01), (0, 0, 0.5, 1.0)])

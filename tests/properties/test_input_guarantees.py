@@ -148,6 +148,7 @@ def test_vectorised_rule_equals_the_cell_rule(cells):
             assert number == known, t
 
 
+@pytest.mark.slow
 @settings(max_examples=EXAMPLES["fit"], deadline=None)
 @given(st.lists(st.tuples(st.integers(0, 500), st.integers(0, 500)), min_size=1,
                 max_size=6))

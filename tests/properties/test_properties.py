@@ -23,6 +23,7 @@ cell = st.one_of(
 )
 
 
+@pytest.mark.slow
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(st.tuples(st.text(max_size=5), cell, cell), min_size=0, max_size=12))
 def test_any_table_loads_or_raises_data_error(rows):

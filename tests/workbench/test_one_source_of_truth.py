@@ -75,6 +75,7 @@ def test_a_closed_pipe_ends_quietly_and_the_folder_is_complete(tmp_path):
     assert (out / FILES["report"]).exists() and record["final"]
 
 
+@pytest.mark.slow
 def test_results_are_small_in_a_notebook():
     run = api.fit(api.demo_data_path(), group="branch", successes="signups",
                   trials="visitors", seed=1, checks=False)

@@ -515,6 +515,7 @@ def test_cli_compare_two_folders(folders, tmp_path, capsys):
     assert pd.read_csv(out / COMPARISON_TABLE)["run"].tolist() == ["bb", "cp"]
 
 
+@pytest.mark.slow
 def test_cli_compare_fits_several_models(folders, tmp_path, capsys):
     out = tmp_path / "three"
     argv = ["compare", "--data", str(folders["csv"]), "--models",

@@ -435,6 +435,7 @@ def test_cli_rank_rewrites_folder(folders, model, capsys):
     assert "ranks.csv" in record["files"]
 
 
+@pytest.mark.slow
 def test_cli_rank_compare_groups(folders, capsys):
     folder = folders["beta-binomial"]
     code = cli.main(["rank", str(folder), "--compare-groups", "unit-001,unit-004,unit-009"])

@@ -123,6 +123,7 @@ def test_help_on_every_command(capsys):
         assert option in text
 
 
+@pytest.mark.slow
 def test_existing_run_folder_replaced_whole_other_folders_refused(tmp_path, capsys):
     path = csv(tmp_path, [f"g{i},{i},{i + 5}" for i in range(6)])
     out = tmp_path / "run"

@@ -159,6 +159,7 @@ def _same_estimates(got: pd.DataFrame, want: pd.DataFrame, *, atol: float) -> No
             pd.testing.assert_series_equal(got[column], want[column])
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("exact_quantiles", [True, False])
 def test_partition_scoring_equals_the_estimators_summary(client, monkeypatch, exact_quantiles):
     from helpers import simulate

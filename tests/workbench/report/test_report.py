@@ -141,6 +141,7 @@ def test_values_on_the_page_are_the_files_values(run_folder, html):
     assert '<td class="t">NA</td>' in html  # a group called NA stays a name
 
 
+@pytest.mark.slow
 def test_absent_tables_say_not_computed(run_folder, tmp_path):
     bare = tmp_path / "bare"
     shutil.copytree(run_folder, bare)
@@ -368,6 +369,7 @@ def _big_folder(path: Path, n: int) -> Path:
     return runfolder.write_folder(path, parts)
 
 
+@pytest.mark.slow
 def test_large_run_keeps_the_page_small(tmp_path):
     n = 5000
     folder = _big_folder(tmp_path / "big", n)
