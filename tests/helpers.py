@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
+
 import numpy as np
 
 from workbench.models import GroupCounts
@@ -14,3 +17,9 @@ def simulate(groups=40, mean=0.2, concentration=30.0, trials=(5, 300), seed=0):
     n = rng.integers(trials[0], trials[1] + 1, size=groups)
     y = rng.binomial(n, theta)
     return GroupCounts([f"unit-{i:03d}" for i in range(groups)], y, n), theta
+
+
+def recorded_exit_code(folder) -> int:
+    """The exit code a command on ``folder`` must give by the README's rule: 0 when its
+    run.json records the run as final, 3 when not (read from the file, not from the code)."""
+    return 0 if json.loads((Path(folder) / "run.json").read_text())["final"] else 3
