@@ -6,7 +6,6 @@ import json
 from pathlib import Path
 
 import numpy as np
-
 from workbench.models import GroupCounts
 
 
