@@ -5,7 +5,8 @@ likelihood per distinct (successes, trials) pair, weighted by how many groups sh
 Two free parameters whatever the number of groups, no funnel between kappa and the group
 rates, and a cost per gradient set by the distinct pairs. theta_j is then drawn from its
 conditional Beta(mu kappa + y_j, (1 - mu) kappa + n_j - y_j), one per hyper-draw: this is an
-exact draw from the joint posterior, not an approximation.
+exact draw from the joint posterior, not an approximation. log kappa's prior is truncated to
+the exact engine's bounds (kappa from 1e-6 to 1e8), so the two engines fit the same model.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._grid import HyperPrior
+from ._grid import V_BOUNDS, HyperPrior
 from .exceptions import SamplingError
 
 
@@ -91,7 +92,11 @@ def sample_hyper(
     pairs, counts = pairs[seen], counts[seen]
     with pm.Model():
         mu = pm.Beta("mu", prior.mu_a, prior.mu_b)
-        log_kappa = pm.Normal("log_kappa", np.log(prior.kappa_median), prior.kappa_log_sd)
+        # the exact engine's cap on kappa (1e-6 to 1e8), so both engines fit one model
+        log_kappa = pm.TruncatedNormal(
+            "log_kappa", np.log(prior.kappa_median), prior.kappa_log_sd,
+            lower=V_BOUNDS[0], upper=V_BOUNDS[1],
+        )
         kappa = pm.math.exp(log_kappa)
         if len(pairs):
             dist = pm.BetaBinomial.dist(n=pairs[:, 1], alpha=mu * kappa, beta=(1 - mu) * kappa)
