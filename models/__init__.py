@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from ._closed import closed_form
 from ._data import CaseMix, GroupCounts
-from ._grid import HyperPrior
+from ._grid import EXACT_TOLERANCE, HyperPrior
 from ._model import (
     MODELS,
     SUMMARY_COLUMNS,
@@ -41,6 +41,7 @@ __all__ = [
     "CompletePooling",
     "ConvergenceWarning",
     "DataError",
+    "EXACT_TOLERANCE",
     "GroupCounts",
     "HyperPrior",
     "LogitNormal",

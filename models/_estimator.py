@@ -208,7 +208,8 @@ class _Estimator:
 
         ``population_mean`` (mu), ``concentration`` (kappa; larger = groups more alike),
         ``between_group_sd`` (sd of true rates across groups), ``new_group_rate`` (the rate of
-        a new, unseen group: the posterior predictive).
+        a new, unseen group: the posterior predictive). ``note`` warns where the mean is set by
+        a heavy upper tail (posterior sd above the mean): read the median and interval there.
         """
         self._require_fitted()
         level = _check_level(level)
@@ -216,12 +217,18 @@ class _Estimator:
         rows = []
         extra = [v for v in post.data_vars if v.startswith("beta_")]
         names = ("mu", "kappa", "between_group_sd", "theta_new", "alpha", "sigma", "tau", *extra)
+        quadrature = self._population_by_quadrature(level)
         for name in names:
             if name not in post:
                 continue
-            x = post[name].values.ravel()
-            lo, med, hi = np.quantile(x, [(1 - level) / 2, 0.5, (1 + level) / 2])
-            rows.append((name, float(x.mean()), float(med), float(lo), float(hi)))
+            if name in quadrature:
+                mean, med, lo, hi, sd = quadrature[name]
+            else:
+                x = post[name].values.ravel()
+                lo, med, hi = np.quantile(x, [(1 - level) / 2, 0.5, (1 + level) / 2])
+                mean, sd = float(x.mean()), float(x.std())
+            rows.append((name, float(mean), float(med), float(lo), float(hi),
+                         self._tail_note(name, float(mean), float(sd))))
         labels = {
             "mu": "population_mean",
             "kappa": "concentration",
@@ -232,10 +239,21 @@ class _Estimator:
             "tau": "logit_between_parent_sd",
             **{name: f"effect_per_sd_{name[5:]}" for name in extra},
         }
-        table = pd.DataFrame(rows, columns=["quantity", "mean", "median", "lower", "upper"])
+        table = pd.DataFrame(rows, columns=["quantity", "mean", "median", "lower", "upper",
+                                            "note"])
         table.insert(1, "parameter", table["quantity"])
         table["quantity"] = table["quantity"].map(labels)
         return table
+
+    def _population_by_quadrature(self, level: float) -> dict[str, tuple]:
+        """(mean, median, lower, upper, sd) of population quantities known in closed form."""
+        return {}
+
+    def _tail_note(self, name: str, mean: float, sd: float) -> str:
+        if name not in ("kappa", "sigma", "tau") or not sd > abs(mean) > 0:
+            return ""
+        return (f"heavy upper tail (posterior sd {sd:.3g} above the mean): the mean is set by"
+                " the tail; read the median and interval")
 
     def _shrinkage(self) -> np.ndarray:
         """Posterior mean of kappa / (kappa + n_j): weight on the population mean."""

@@ -15,7 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, special
+from scipy import optimize, special, stats
 
 from ._mixture import BetaMixturePosteriors
 
@@ -24,6 +24,33 @@ U_BOUNDS = (-30.0, 30.0)
 V_BOUNDS = (np.log(1e-6), np.log(1e8))
 EDGE_TOLERANCE = 1e-10  # largest density allowed on the grid's edge, relative to the mode
 REFINE_TOLERANCE = 1e-6  # largest change of any posterior mean when the grid is refined
+
+#: The engine's stated tolerance (README, "How exact is exact"): every printed rate (mean,
+#: median, interval end, population quantity) within RATE_TOLERANCE_SD of its posterior sd,
+#: every printed probability and shrinkage within PROBABILITY_TOLERANCE, kappa within
+#: KAPPA_RELATIVE_TOLERANCE; held against an independent quadrature in
+#: tests/models/test_exact_tolerance.py.
+RATE_TOLERANCE_SD = 0.01
+PROBABILITY_TOLERANCE = 2e-4
+KAPPA_RELATIVE_TOLERANCE = 0.01
+EXACT_TOLERANCE = {"rate_sd": RATE_TOLERANCE_SD, "probability": PROBABILITY_TOLERANCE,
+                   "kappa_relative": KAPPA_RELATIVE_TOLERANCE}
+#: The refinement test asks the same of the change between the last two grids: that change
+#: bounds the error of the finer one, as long as the error falls at least twofold per halving
+#: of the spacing (it falls fourfold or faster here; the independent test checks the result).
+REFINE_RATE_SD = RATE_TOLERANCE_SD
+REFINE_PROBABILITY = PROBABILITY_TOLERANCE
+MAX_REFINEMENTS = 5
+#: Posterior probabilities at which each group's CDF is compared under refinement (covers
+#: every central interval up to 99% and any target inside the bulk).
+PROBE_PROBABILITIES = (0.005, 0.025, 0.1, 0.25, 0.5, 0.75, 0.9, 0.975, 0.995)
+#: Most distinct (successes, trials) pairs whose CDFs are compared (spread over the range of
+#: posterior means and of trials); means and sds are compared for every pair.
+PROBE_PAIRS = 256
+#: Sub-nodes along logit mu per unit of (cell width / theta's conditional width in logit mu),
+#: and at most this many per cell (see GridPosterior.cdf_points).
+SUBNODE_SHARPNESS = 2.0
+MAX_SUBNODES = 16
 
 
 @dataclass(frozen=True)
@@ -122,6 +149,11 @@ class GridPosterior:
     edge_density: float  # largest density on the grid edge, relative to the mode
     refinement_change: float  # largest change of a posterior mean under refinement
     widenings: int
+    #: largest change under refinement of a rate (group CDF at its probes, population
+    #: quantities), in posterior sds, and of a probability (group CDF, shrinkage)
+    refinement_rate_sd: float = np.nan
+    refinement_probability: float = np.nan
+    refinements: int = 0
 
     @property
     def weights(self) -> np.ndarray:
@@ -165,6 +197,7 @@ class GridPosterior:
             coarse = self.mixture(
                 successes, trials, mass=1 - 1e-10, stride=quantile_stride, quantile_stride=None
             )
+        sub_mu, sub_kappa, sub_w = self.cdf_points(stride, mass)
         return BetaMixturePosteriors(
             w[keep],
             mu[keep] * kappa[keep],
@@ -173,7 +206,59 @@ class GridPosterior:
             pairs[:, 1],
             index.ravel(),
             quantile_source=coarse,
+            cdf_components=(sub_w, sub_mu * sub_kappa, (1 - sub_mu) * sub_kappa),
         )
+
+    def cdf_points(self, stride: int = 1, mass: float = 1 - 1e-12):
+        """mu, kappa and weight of the points on which group CDFs are summed.
+
+        Where kappa is large, theta given (mu, kappa) is much narrower than a grid cell in
+        logit mu, so its CDF is nearly a step in mu and a sum over the nodes is a staircase.
+        Each such row of the grid is split into sub-nodes along logit mu (their number grows
+        with the cell's width over theta's conditional width, up to MAX_SUBNODES), weighted by
+        a bicubic spline of the log density: the same posterior, finely enough for a CDF.
+        """
+        from scipy.interpolate import RectBivariateSpline
+
+        u, v = self.u[::stride], self.v[::stride]
+        rel = self.log_density[::stride, ::stride]
+        rel = rel - rel.max()
+        w = np.exp(rel)
+        w /= w.sum()
+        flat = np.sort(w.ravel())[::-1]
+        floor = flat[min(int(np.searchsorted(np.cumsum(flat), mass)), flat.size - 1)]
+        kept = w >= floor
+        h = u[1] - u[0] if len(u) > 1 else 0.0
+        splits = np.clip(np.ceil(SUBNODE_SHARPNESS * h * np.sqrt(np.exp(v) / 4.0)),
+                         1, MAX_SUBNODES).astype(int)
+        spline = None
+        if splits.max() > 1 and min(len(u), len(v)) > 3:
+            spline = RectBivariateSpline(u, v, np.maximum(rel, -80.0), kx=3, ky=3)
+        else:
+            splits[:] = 1
+        out_u, out_v, out_w = [], [], []
+        for count in np.unique(splits):
+            iu, jv = np.nonzero(kept & (splits == count)[None, :])
+            if count == 1:
+                out_u.append(u[iu])
+                out_v.append(v[jv])
+                out_w.append(np.exp(rel[iu, jv]))
+                continue
+            offsets = (np.arange(count) + 0.5) / count - 0.5
+            su = (u[iu][:, None] + h * offsets[None, :]).ravel()
+            sv = np.repeat(v[jv], count)
+            out_u.append(su)
+            out_v.append(sv)
+            out_w.append(np.exp(np.minimum(spline.ev(su, sv), 0.0)) / count)
+        su, sv, sw = (np.concatenate(x) for x in (out_u, out_v, out_w))
+        return special.expit(su), np.exp(sv), sw / sw.sum()
+
+    def shrinkage(self, trials: np.ndarray) -> np.ndarray:
+        """Posterior mean of kappa / (kappa + n) for each n in ``trials``."""
+        _, kappa, w = self.points()
+        n = np.asarray(trials, dtype=float)
+        uniq, inv = np.unique(n, return_inverse=True)
+        return ((kappa[None, :] / (kappa[None, :] + uniq[:, None])) @ w)[inv.ravel()]
 
     def draw(self, size: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
         """Independent draws of (mu, kappa): a grid cell by weight, then uniform within it."""
@@ -275,20 +360,153 @@ def fit_grid(
         widenings += 1
     edge_density = float(np.exp(max(open_edges))) if open_edges else 0.0
 
-    # refinement: the same box with nodes halfway between, compare every posterior mean
-    change = np.inf
-    for _ in range(4):
+    # refinement: the same box with nodes halfway between; compare every reported quantity
+    change = rate_sd = prob = np.inf
+    refinements = 0
+    for step in range(MAX_REFINEMENTS):
         coarse = GridPosterior(u, v, ld, 0.0, edge_density, np.nan, widenings)
         fine_u, fine_v, fine_ld = evaluate(lo, hi, 2 * points - 1)
         fine = GridPosterior(fine_u, fine_v, fine_ld, 0.0, edge_density, np.nan, widenings)
-        m_coarse = coarse.mixture(successes, trials)._pair_mean()
-        m_fine = fine.mixture(successes, trials)._pair_mean()
-        change = float(np.max(np.abs(m_coarse - m_fine)))
+        change, rate_sd, prob = refinement_changes(
+            coarse, fine, successes, trials, full=step == MAX_REFINEMENTS - 1
+        )
         u, v, ld, points = fine_u, fine_v, fine_ld, 2 * points - 1
-        if change < REFINE_TOLERANCE:
+        refinements += 1
+        if change < REFINE_TOLERANCE and rate_sd < REFINE_RATE_SD and prob < REFINE_PROBABILITY:
             break
     hu = u[1] - u[0]
     hv = v[1] - v[0]
     top = ld.max()
     log_ml = float(top + np.log(np.exp(ld - top).sum() * hu * hv)) + counts.log_choose_total
-    return GridPosterior(u, v, ld, log_ml, edge_density, change, widenings)
+    return GridPosterior(u, v, ld, log_ml, edge_density, change, widenings,
+                         rate_sd, prob, refinements)
+
+
+def _probe_pairs(successes, trials, means: np.ndarray) -> np.ndarray:
+    """Rows of the distinct pairs whose CDFs the refinement compares: all, or PROBE_PAIRS
+    spread evenly over the order of posterior means and over the order of trials."""
+    pairs, _ = distinct_pairs(successes, trials)
+    if len(pairs) <= PROBE_PAIRS:
+        return np.arange(len(pairs))
+    half = PROBE_PAIRS // 2
+    by_mean = np.argsort(means, kind="stable")
+    by_trials = np.argsort(pairs[:, 1], kind="stable")
+    picks = np.linspace(0, len(pairs) - 1, half).round().astype(int)
+    return np.unique(np.concatenate([by_mean[picks], by_trials[picks]]))
+
+
+def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, trials, *,
+                       full: bool = True):
+    """How much the reported quantities move from ``coarse`` to ``fine`` (nodes halfway).
+
+    Returns the largest change of a group's posterior mean (absolute); of a rate in posterior
+    sds (group means and sds; each probed group's quantiles at PROBE_PROBABILITIES, as the
+    CDF change there over density x sd; the population quantities); and of a probability
+    (the probed CDFs, shrinkage). Unless ``full``, the costly probes are skipped (the
+    probability is then inf) when the means or sds alone already ask for a finer grid.
+    """
+    mc = coarse.mixture(successes, trials, quantile_stride=None)
+    mf = fine.mixture(successes, trials, quantile_stride=None)
+    m_c, var_c = mc._pair_moments()
+    m_f, var_f = mf._pair_moments()
+    sd_f = np.sqrt(np.maximum(var_f, 1e-300))
+    mean_change = float(np.max(np.abs(m_c - m_f)))
+    rate = max(float(np.max(np.abs(m_c - m_f) / sd_f)),
+               float(np.max(np.abs(np.sqrt(np.maximum(var_c, 0)) - sd_f) / sd_f)))
+    if not full and (mean_change >= REFINE_TOLERANCE or rate >= REFINE_RATE_SD):
+        return mean_change, rate, np.inf
+    rows = _probe_pairs(successes, trials, m_f)
+    pairs, _ = distinct_pairs(successes, trials)
+    sub_y, sub_n = pairs[rows, 0], pairs[rows, 1]
+    pc = coarse.mixture(sub_y, sub_n, quantile_stride=None)
+    pf = fine.mixture(sub_y, sub_n, quantile_stride=None)
+    m1, var = pf._pair_moments()
+    var = np.maximum(var, 1e-300)
+    common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
+    prob = 0.0
+    for q in PROBE_PROBABILITIES:
+        x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
+        delta = np.abs(pc._pair_cdf(x) - pf._pair_cdf(x))
+        density = pf._pair_pdf(x)
+        prob = max(prob, float(delta.max()))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            shift = np.where(density > 0, delta / (density * np.sqrt(var)), 0.0)
+        rate = max(rate, float(np.nanmax(shift)))
+    trial_values = np.unique(np.asarray(trials, dtype=float))
+    prob = max(prob, float(np.max(np.abs(coarse.shrinkage(trial_values)
+                                         - fine.shrinkage(trial_values)))))
+    pop_c, pop_f = population_summary(coarse), population_summary(fine)
+    for name, f in pop_f.items():
+        c = pop_c[name]
+        if name == "kappa":  # relative, on its log scale
+            moved = np.abs(np.log(np.asarray(c[:4])) - np.log(np.asarray(f[:4])))
+            rate = max(rate, float(np.max(moved)) * RATE_TOLERANCE_SD / KAPPA_RELATIVE_TOLERANCE)
+        else:
+            moved = np.abs(np.asarray(c[:4]) - np.asarray(f[:4])) / max(f[4], 1e-300)
+            rate = max(rate, float(np.max(moved)))
+    return mean_change, rate, prob
+
+
+#: Nodes per axis (about) of the finer grid on which population quantiles are read, from a
+#: bicubic spline of the log density: a quantile to a small share of a cell, where reading it
+#: off the nodes would be off by up to half a cell.
+QUANTILE_NODES = 600
+
+
+def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.ndarray:
+    order = np.argsort(values, kind="stable")
+    v, w = values[order], weights[order]
+    cdf = np.cumsum(w) - 0.5 * w  # each sub-node's mass centred on its value
+    return np.interp(probs, cdf / w.sum(), v)
+
+
+def population_summary(grid: GridPosterior, level: float = 0.95) -> dict[str, tuple]:
+    """Mean, median, central interval and sd of mu, kappa, between-group sd and new_group_rate.
+
+    By quadrature over the grid, not from draws. Means and sds are sums over the nodes (the
+    trapezoid rule on a density that vanishes at the grid's edges). Quantiles are read on a
+    finer grid (QUANTILE_NODES per axis), from a bicubic spline of the log density (mu and
+    kappa from their marginals, the between-group sd from its values there); the new group's
+    rate is the exact Beta mixture of a group with no trials.
+    """
+    from scipy.interpolate import RectBivariateSpline
+
+    w = grid.weights
+    probs = np.array([0.5, (1 - level) / 2, (1 + level) / 2])
+    uu, vv = np.meshgrid(grid.u, grid.v, indexing="ij")
+    mu, kappa = special.expit(uu), np.exp(vv)
+    spread = mu * (1 - mu) / (kappa + 1)
+
+    def moments(x):
+        mean = float((w * x).sum())
+        return mean, float(np.sqrt(max((w * x * x).sum() - mean**2, 0.0)))
+
+    k = max(2, -(-QUANTILE_NODES // (len(grid.u) - 1)))
+    fine_u = np.linspace(grid.u[0], grid.u[-1], (len(grid.u) - 1) * k + 1)
+    fine_v = np.linspace(grid.v[0], grid.v[-1], (len(grid.v) - 1) * k + 1)
+    rel = np.maximum(grid.log_density - grid.log_density.max(), -80.0)
+    order = min(3, len(grid.u) - 1, len(grid.v) - 1)
+    spline = RectBivariateSpline(grid.u, grid.v, rel, kx=order, ky=order)
+    fine_w = np.exp(np.minimum(spline(fine_u, fine_v), 0.0))
+    fine_w[:, [0, -1]] *= 0.5  # trapezoid weights: the edges are half cells
+    fine_w[[0, -1], :] *= 0.5
+    fine_w /= fine_w.sum()
+
+    out: dict[str, tuple] = {}
+    mean, sd = moments(mu)
+    q = special.expit(_weighted_quantiles(fine_u, fine_w.sum(axis=1), probs))
+    out["mu"] = (mean, *map(float, q), sd)
+    mean, sd = moments(kappa)
+    q = np.exp(_weighted_quantiles(fine_v, fine_w.sum(axis=0), probs))
+    out["kappa"] = (mean, *map(float, q), sd)
+    mean, sd = moments(np.sqrt(spread))
+    fm = special.expit(fine_u)[:, None]
+    fine_sd = np.sqrt(fm * (1 - fm) / (np.exp(fine_v)[None, :] + 1))
+    q = _weighted_quantiles(fine_sd.ravel(), fine_w.ravel(), probs)
+    out["between_group_sd"] = (mean, *map(float, q), sd)
+    new = grid.mixture(np.zeros(1, dtype=np.int64), np.zeros(1, dtype=np.int64),
+                       quantile_stride=None)
+    mean, var = new.moments()
+    out["theta_new"] = (float(mean[0]), *(float(new.ppf(q)[0]) for q in probs),
+                        float(np.sqrt(var[0])))
+    return out

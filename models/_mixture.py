@@ -48,23 +48,33 @@ class BetaMixturePosteriors:
         pair_trials: np.ndarray,
         index: np.ndarray,
         quantile_source: BetaMixturePosteriors | None = None,
+        cdf_components: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
     ) -> None:
         self.weights = weights / weights.sum()
         self.quantile_source = quantile_source
         self.a = a
         self.b = b
+        # the CDF and density may use a finer mixture of the same posterior (sub-nodes where
+        # theta given (mu, kappa) is much narrower than a grid cell); means use the nodes
+        if cdf_components is None:
+            self._cdf = (self.weights, a, b)
+        else:
+            cw, ca, cb = cdf_components
+            self._cdf = (cw / cw.sum(), ca, cb)
         self.y = pair_successes.astype(float)
         self.n = pair_trials.astype(float)
         self.index = index
-        cells = len(self.y) * len((quantile_source or self).weights)
+        cells = len(self.y) * len((quantile_source or self)._cdf[0])
         self.exact_quantiles = cells <= EXACT_QUANTILE_CELLS
 
-    def _chunks(self):
-        step = max(1, _CHUNK_CELLS // max(len(self.weights), 1))
+    def _chunks(self, a=None, b=None):
+        a = self.a if a is None else a
+        b = self.b if b is None else b
+        step = max(1, _CHUNK_CELLS // max(len(a), 1))
         for start in range(0, len(self.y), step):
             sl = slice(start, start + step)
-            alpha = self.a[None, :] + self.y[sl, None]
-            beta = self.b[None, :] + (self.n[sl] - self.y[sl])[:, None]
+            alpha = a[None, :] + self.y[sl, None]
+            beta = b[None, :] + (self.n[sl] - self.y[sl])[:, None]
             yield sl, alpha, beta
 
     def _pair_mean(self) -> np.ndarray:
@@ -92,13 +102,15 @@ class BetaMixturePosteriors:
 
     def _pair_cdf(self, x: np.ndarray) -> np.ndarray:
         out = np.empty(len(self.y))
-        for sl, alpha, beta in self._chunks():
-            out[sl] = special.betainc(alpha, beta, x[sl, None]) @ self.weights
+        weights, a, b = self._cdf
+        for sl, alpha, beta in self._chunks(a, b):
+            out[sl] = special.betainc(alpha, beta, x[sl, None]) @ weights
         return out
 
     def _pair_pdf(self, x: np.ndarray) -> np.ndarray:
         out = np.empty(len(self.y))
-        for sl, alpha, beta in self._chunks():
+        weights, a, b = self._cdf
+        for sl, alpha, beta in self._chunks(a, b):
             xs = x[sl, None]
             with np.errstate(divide="ignore", invalid="ignore"):
                 logpdf = (
@@ -106,7 +118,7 @@ class BetaMixturePosteriors:
                     + special.xlog1py(beta - 1, -xs)
                     - special.betaln(alpha, beta)
                 )
-            out[sl] = np.exp(logpdf) @ self.weights
+            out[sl] = np.exp(logpdf) @ weights
         return out
 
     def cdf(self, x: float) -> np.ndarray:
@@ -116,9 +128,27 @@ class BetaMixturePosteriors:
         return 1.0 - self.cdf(x)
 
     def ppf(self, q: float, *, tol: float = 1e-10, max_iter: int = 60) -> np.ndarray:
-        """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile."""
+        """Exact quantiles: safeguarded Newton from the moment-matched Beta's quantile.
+
+        With a ``quantile_source`` (the same posterior on the grid before its last
+        refinement: a quarter of the points), the quantiles are solved there and then polished
+        by two Newton steps on this, the full, grid, so what is returned is the full grid's
+        quantile (its CDF equals ``q`` to the refinement's own error squared).
+        """
         if self.quantile_source is not None:
-            return self.quantile_source.ppf(q, tol=tol, max_iter=max_iter)
+            start = self.quantile_source._pair_ppf(q, tol=tol, max_iter=max_iter)
+            return self._polish(start, q)[self.index]
+        return self._pair_ppf(q, tol=tol, max_iter=max_iter)[self.index]
+
+    def _polish(self, x: np.ndarray, q: float, steps: int = 2) -> np.ndarray:
+        for _ in range(steps):
+            f = self._pair_cdf(x) - q
+            new = x - f / np.maximum(self._pair_pdf(x), 1e-300)
+            ok = np.isfinite(new) & (new > 0.0) & (new < 1.0)
+            x = np.where(ok, new, x)
+        return x
+
+    def _pair_ppf(self, q: float, *, tol: float, max_iter: int) -> np.ndarray:
         m1, var = self._pair_moments()
         var = np.maximum(var, 1e-300)
         common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
@@ -139,4 +169,4 @@ class BetaMixturePosteriors:
             x = new
             if not active.any():
                 break
-        return x[self.index]
+        return x

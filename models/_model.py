@@ -12,7 +12,7 @@ from ._estimator import (  # noqa: F401  (SUMMARY_COLUMNS is re-exported)
     _check_sampler,
     _Estimator,
 )
-from ._grid import HyperPrior, fit_grid
+from ._grid import V_BOUNDS, HyperPrior, fit_grid, population_summary
 from ._hierarchies import LogitNormal, Nested
 from ._mcmc import SamplerSettings, sample_hyper
 from ._mixture import BetaPosteriors
@@ -183,6 +183,8 @@ class BetaBinomial(_Estimator):
                 "grid_points": int(grid.log_density.size),
                 "grid_edge_density": grid.edge_density,
                 "grid_refinement_change": grid.refinement_change,
+                "grid_refinement_rate_sd": grid.refinement_rate_sd,
+                "grid_refinement_probability": grid.refinement_probability,
                 "interval_method": "exact" if self.exact_.exact_quantiles else "draws",
             }
         else:
@@ -210,15 +212,29 @@ class BetaBinomial(_Estimator):
         hyper = {"mu": mu, "kappa": kappa, "between_group_sd": sd}
         return theta, theta_new, hyper, extra, stats_
 
+    def _exact_grid(self):
+        return getattr(self, "grid_", None) if self._engine_used == "exact" else None
+
+    def _population_by_quadrature(self, level: float) -> dict[str, tuple]:
+        grid = self._exact_grid()
+        return {} if grid is None else population_summary(grid, level)
+
+    def _tail_note(self, name: str, mean: float, sd: float) -> str:
+        note = super()._tail_note(name, mean, sd)
+        grid = self._exact_grid()
+        if name == "kappa" and grid is not None and grid.v[-1] >= V_BOUNDS[1] - 1e-9:
+            edge = grid.weights.sum(axis=0)
+            if edge[-1] > 1e-6 * edge.max():
+                note += ("; " if note else "") + (
+                    f"the posterior reaches kappa's cap ({np.exp(V_BOUNDS[1]):.0e}): its mean"
+                    " and upper end depend on that cap")
+        return note
+
     def _shrinkage(self) -> np.ndarray:
         n = self.data_.trials.astype(float)
-        exact = getattr(self, "grid_", None) if self._engine_used == "exact" else None
-        if exact is not None:
-            _, kappa, w = exact.points()
-            out = np.empty(len(n))
-            uniq, inv = np.unique(n, return_inverse=True)
-            out = ((kappa[None, :] / (kappa[None, :] + uniq[:, None])) @ w)[inv.ravel()]
-            return out
+        grid = self._exact_grid()
+        if grid is not None:
+            return grid.shrinkage(n)
         kappa = self.idata_.posterior["kappa"].values.ravel()
         uniq, inv = np.unique(n, return_inverse=True)
         return (kappa[None, :] / (kappa[None, :] + uniq[:, None])).mean(axis=1)[inv.ravel()]

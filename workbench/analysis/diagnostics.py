@@ -33,7 +33,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 import pandas as pd
 
-from ..models import attr
+from ..models import EXACT_TOLERANCE, attr
 from . import fast_diagnostics as fast
 
 with warnings.catch_warnings():
@@ -64,6 +64,8 @@ class Thresholds:
     treedepth_share: float = 0.01
     grid_edge_density: float = 1e-8
     grid_refinement_change: float = 1e-6
+    grid_refinement_rate_sd: float = EXACT_TOLERANCE["rate_sd"]  # stated in the README
+    grid_refinement_probability: float = EXACT_TOLERANCE["probability"]
     independent_draws: int = 400
     replicates: int = 400
 
@@ -259,6 +261,12 @@ def diagnose(idata, thresholds: Thresholds | None = None) -> Diagnostics:
                 th.grid_refinement_change,
                 "above",
             )
+        for key, what in (("rate_sd", "change of a rate under refinement, in posterior sds"),
+                          ("probability", "change of a probability under refinement")):
+            value = attr(idata, f"grid_refinement_{key}")
+            limit = getattr(th, f"grid_refinement_{key}")
+            if value is not None and np.isfinite(float(value)) and float(value) > limit:
+                fail("grid", what, float(value), limit, "above")
     verdict = READY if not reasons else NOT_READY
     return Diagnostics(table, run, verdict, reasons, remedies_for(reasons, idata), notes, th)
 

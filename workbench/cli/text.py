@@ -47,10 +47,15 @@ def format_fit(run, *, rows: int = 5) -> str:
     )
     level = run.settings["level"]
     for row in run.population.itertuples():
+        note = getattr(row, "note", "")
+        note = note if isinstance(note, str) else ""
+        centre = f"median {row.median:.4g}" if note else f"{row.mean:10.4g}"
         lines.append(
-            f"  {row.quantity:<18} {row.mean:10.4g}   {level:.0%} interval"
+            f"  {row.quantity:<18} {centre:>10}   {level:.0%} interval"
             f" [{row.lower:.4g}, {row.upper:.4g}]"
         )
+        if note:
+            lines.append(f"    note: {note}")
     lines += format_parents(run.tables.get("parents"), level, rows=rows)
     est = run.estimates.sort_values("posterior_mean", ascending=False)
     show = est if len(est) <= 2 * rows else pd.concat([est.head(rows), est.tail(rows)])

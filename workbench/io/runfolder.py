@@ -102,6 +102,7 @@ TEXT_COLUMNS = (
     "oe_outside_95",
     "oe_outside_998",
     "term",
+    "note",
     "level",
     "reference",
     "kind",

@@ -144,7 +144,9 @@ def _diagnostic_rows(diag: dict, word: str) -> list:
         if run.get("independent_draws"):
             marks += (
                 f"; grid: density at its edge <= {th.get('grid_edge_density')}, change"
-                f" under refinement <= {th.get('grid_refinement_change')}"
+                f" under refinement <= {th.get('grid_refinement_change')} (means),"
+                f" <= {th.get('grid_refinement_rate_sd')} posterior sd (rates),"
+                f" <= {th.get('grid_refinement_probability')} (probabilities)"
             )
         else:
             marks += (
@@ -247,6 +249,10 @@ def population(folder: FolderContents) -> Table | None:
         return None
     level = folder.settings.get("level")
     frame = pop.drop(columns=[c for c in ("parameter",) if c in pop.columns])
+    if "note" in frame and not frame["note"].fillna("").astype(str).str.strip().any():
+        frame = frame.drop(columns="note")  # no heavy tail to warn of
+    elif "note" in frame:
+        frame = frame.assign(note=frame["note"].fillna("").astype(str))
     frame = frame.assign(quantity=frame["quantity"].astype(str).str.replace("_", " "))
     label = f"{level:.0%}" if isinstance(level, float) else ""
     return page_table(
