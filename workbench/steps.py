@@ -390,9 +390,8 @@ def calibrate_folder(path: str | Path, *, simulations: int = 100, groups: int = 
 
     from .analysis import calibration
     from .models import MODELS
-    from .pipeline import model_settings
-
     from .options import Number
+    from .pipeline import model_settings
 
     simulations = Number(1, 100_000, whole=True)("simulations", simulations)
     groups = Number(0, 10_000, whole=True)("tracked_groups", groups)

@@ -6,7 +6,6 @@ import numpy as np
 import pytest
 from helpers import simulate
 from scipy import integrate, special, stats
-
 from workbench.models import BetaBinomial, GroupCounts, HyperPrior
 from workbench.models._grid import _log_prior, fit_grid
 from workbench.models._mixture import BetaMixturePosteriors

@@ -8,7 +8,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import integrate, special, stats
-
 from workbench.models import CaseMix, ConvergenceWarning, GroupCounts, LogitNormal
 from workbench.models import _casemix as cm
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
-
 from workbench.models import CompletePooling, GroupCounts, NoPooling
 
 COUNTS = GroupCounts(["a", "b", "c", "d", "e"], [0, 3, 10, 7, 0], [10, 10, 10, 40, 0])

@@ -6,7 +6,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import integrate, special, stats
-
 from workbench.models import GroupCounts, LogitNormal, ParameterError
 from workbench.models._logit import centred_mask, population_rates, standardise
 from workbench.models._posterior import make_idata
@@ -78,6 +77,7 @@ def test_covariates_only_with_a_model_that_uses_them(tmp_path):
 
 def test_covariate_errors_name_the_row(tmp_path):
     from workbench.models import DataError
+
     from workbench.io.inputs import load_groups
 
     path = tmp_path / "d.csv"

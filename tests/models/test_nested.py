@@ -7,12 +7,12 @@ import json
 import numpy as np
 import pytest
 from scipy import special, stats
-
 from workbench.models import GroupCounts, Nested, ParameterError
 
 
 def test_parent_column_checks(tmp_path):
     from workbench.models import DataError
+
     from workbench.io.inputs import load_groups
 
     path = tmp_path / "d.csv"

@@ -10,7 +10,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
-
 from workbench.models._stats import MAX_TAIL_TERMS, betabinom_cdf
 
 

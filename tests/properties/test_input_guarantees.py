@@ -24,9 +24,9 @@ hypothesis = pytest.importorskip("hypothesis")
 from hypothesis import HealthCheck, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 from scipy import stats  # noqa: E402
+from workbench.models import DataError, NoPooling  # noqa: E402
 
 from workbench.io.inputs import _parse_counts, load_groups, read_count  # noqa: E402
-from workbench.models import DataError, NoPooling  # noqa: E402
 
 #: examples per test; their sum is the number of generated tables a run checks
 EXAMPLES = {"csv": 1000, "frame": 600, "vector": 400, "fit": 40}

@@ -11,8 +11,8 @@ import pytest
 hypothesis = pytest.importorskip("hypothesis")
 from hypothesis import HealthCheck, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
-
 from workbench.models import BetaBinomial, DataError, GroupCounts, NoPooling  # noqa: E402
+
 from workbench.io.inputs import load_groups  # noqa: E402
 
 cell = st.one_of(

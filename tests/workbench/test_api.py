@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
-
 from workbench.models import GroupCounts
+
 from workbench import api, steps
+from workbench.io.inputs import LoadedData
 from workbench.options import FitSettings
 from workbench.pipeline import default_draws
-from workbench.io.inputs import LoadedData
 
 
 def _loaded(y, n):

@@ -12,13 +12,13 @@ import re
 from pathlib import Path
 
 import pytest
+import workbench.models
+from workbench.models import ParameterError, make_model
 
 import workbench
-import workbench.models
 from workbench import api
 from workbench.cli import build_parser
 from workbench.io.runfolder import COMPARISON_FILES, FILES
-from workbench.models import ParameterError, make_model
 from workbench.options import FIT_OPTIONS, FitSettings
 
 PACKAGE = Path(workbench.__file__).resolve().parent

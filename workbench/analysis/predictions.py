@@ -14,8 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from ..models import theta_draws
 from ..io.runfolder import NEW_GROUP_LABEL
+from ..models import theta_draws
 
 #: draws x groups cells simulated at once
 CHUNK_CELLS = 2_000_000

@@ -10,10 +10,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..io.runfolder import NEW_GROUP_LABEL
 from ..analysis.diagnostics import MEANINGS, READY
 from ..analysis.settings import MISFIT, NOT_COMPUTED
 from ..cautions import TERMINAL_CAUTION
+from ..io.runfolder import NEW_GROUP_LABEL
 from ..models import attr
 
 

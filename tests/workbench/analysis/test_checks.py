@@ -14,7 +14,6 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import stats
-
 from workbench.models import (
     ConvergenceWarning,
     DataError,
@@ -24,6 +23,7 @@ from workbench.models import (
 )
 from workbench.models._grid import HyperPrior, fit_grid
 from workbench.models._posterior import make_idata
+
 from workbench import api, cli
 from workbench.analysis import checks as ppc
 from workbench.analysis import loo as loo_module

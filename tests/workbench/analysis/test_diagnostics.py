@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from workbench.models import BetaBinomial, GroupCounts
 from workbench.models._posterior import make_idata
+
 from workbench.analysis.diagnostics import (
     NOT_READY,
     READY,

@@ -21,11 +21,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import special, stats
+from workbench.models import GroupCounts
+from workbench.models._posterior import make_idata
 
 from workbench.analysis.checks import predictive_pvalues, replicate_statistics
 from workbench.analysis.settings import MISFIT, CheckSettings
-from workbench.models import GroupCounts
-from workbench.models._posterior import make_idata
 
 DATA_SETS = 200
 CHAINS, DRAWS = 4, 100  # 400 posterior draws -> 400 replicated data sets per check

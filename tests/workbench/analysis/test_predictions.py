@@ -12,8 +12,8 @@ import pandas as pd
 import pytest
 from helpers import simulate
 from scipy import stats
-
 from workbench.models import NoPooling
+
 from workbench import cli
 from workbench.analysis import predictions as predict
 

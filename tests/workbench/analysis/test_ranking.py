@@ -12,9 +12,9 @@ import pandas as pd
 import pytest
 from helpers import simulate
 from scipy import integrate, stats
-
 from workbench.models import BetaBinomial, CompletePooling, NoPooling
 from workbench.models._mixture import BetaPosteriors
+
 from workbench import api, cli
 from workbench.analysis import decisions, draws, funnel, ranking, ranks, targets
 

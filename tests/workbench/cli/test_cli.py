@@ -146,7 +146,6 @@ def test_existing_run_folder_replaced_whole_other_folders_refused(tmp_path, caps
 
 
 def test_interrupted_write_leaves_old_folder_intact(tmp_path, monkeypatch):
-    from workbench import api
 
     path = csv(tmp_path, [f"g{i},{i},{i + 5}" for i in range(6)])
     out = tmp_path / "run"

@@ -13,9 +13,10 @@ with warnings.catch_warnings():
     warnings.simplefilter("ignore", FutureWarning)
     import arviz as az
 
+from workbench.models import DataError, ParameterError
+
 from workbench.analysis.effects import effects_table
 from workbench.io.inputs import load_groups
-from workbench.models import DataError, ParameterError
 from workbench.options import FitSettings
 
 

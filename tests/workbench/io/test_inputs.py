@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-
 from workbench.models import DataError
+
 from workbench.io.inputs import load_groups
 
 

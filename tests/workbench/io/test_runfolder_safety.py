@@ -18,10 +18,10 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from workbench.models import DataError
 
 from workbench import api, pipeline
 from workbench.io import atomic, runfolder
-from workbench.models import DataError
 
 FORMULA_NAMES = ["=1+1", "+x", "-3", "@a", "\t=x", "\r=y", "'=x", "''+y", "ok", "'plain"]
 ROOT = os.geteuid() == 0 if hasattr(os, "geteuid") else False

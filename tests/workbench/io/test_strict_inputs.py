@@ -13,10 +13,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from workbench.models import DataError
 
 from workbench.cli.main import main
 from workbench.io.inputs import MAX_COLUMNS, MAX_COUNT, load_groups, read_count
-from workbench.models import DataError
 
 CORPUS_DIR = Path(__file__).resolve().parents[2] / "corpus" / "inputs"
 
