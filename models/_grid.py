@@ -73,6 +73,34 @@ class HyperPrior:
         }
 
 
+#: From here on lgamma(x + a) - lgamma(x) is taken from Stirling's series (its next term is
+#: below 1e-25 there), where the two lgammas, each near x log x, would cancel to a few nats.
+STIRLING_FROM = 1e6
+
+
+def _lgamma_base(x: np.ndarray) -> np.ndarray:
+    """lgamma(x) for x > 0 and 0 at x = 0 (the part of lgamma(x + a) that does not vary)."""
+    x = np.asarray(x, dtype=float)
+    return np.where(x > 0, special.gammaln(np.where(x > 0, x, 1.0)), 0.0)
+
+
+def lgamma_shift(x: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """lgamma(x + a) - lgamma(x) (lgamma(a) at x = 0), stable for x up to 1e15 and beyond.
+
+    Broadcasts ``x`` (counts, >= 0) against ``a`` (> 0). For x >= STIRLING_FROM the
+    difference of Stirling's series: (x - 1/2) log1p(a/x) + a log(x + a) - a
+    + 1/(12 (x + a)) - 1/(12 x), every term small or exact, so no cancellation.
+    """
+    x, a = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(a, dtype=float))
+    big = x >= STIRLING_FROM
+    out = special.gammaln(x + a) - _lgamma_base(x)
+    if big.any():
+        xb, ab = x[big], a[big]
+        out[big] = ((xb - 0.5) * np.log1p(ab / xb) + ab * np.log(xb + ab) - ab
+                    + 1.0 / (12.0 * (xb + ab)) - 1.0 / (12.0 * xb))
+    return out
+
+
 class _Counts:
     """Distinct successes, failures and trials with their multiplicities."""
 
@@ -86,9 +114,15 @@ class _Counts:
         self.n_vals, self.n_counts = np.unique(n, return_counts=True)
         log_choose = special.gammaln(n + 1) - special.gammaln(y + 1) - special.gammaln(n - y + 1)
         self.log_choose_total = float(log_choose.sum())
+        # what loglik leaves out (it does not vary with mu and kappa): sum of lgamma(y) +
+        # lgamma(f) - lgamma(n) over groups; the log marginal likelihood adds it back
+        self.log_constant = float(_lgamma_base(self.y_vals) @ self.y_counts
+                                  + _lgamma_base(self.f_vals) @ self.f_counts
+                                  - _lgamma_base(self.n_vals) @ self.n_counts)
 
     def loglik(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
-        """Log marginal likelihood (without binomial coefficients) at points (u, v)."""
+        """Log marginal likelihood at points (u, v), less binomial coefficients and
+        ``log_constant``: sums of lgamma shifts, so no large lgammas cancel."""
         u = np.asarray(u, dtype=float)
         v = np.asarray(v, dtype=float)
         shape = np.broadcast(u, v).shape
@@ -103,9 +137,9 @@ class _Counts:
         for s in range(0, len(u), step):
             sl = slice(s, s + step)
             aa, bb, kk = a[sl], b[sl], kappa[sl]
-            total = special.gammaln(self.y_vals[:, None] + aa).T @ self.y_counts
-            total += special.gammaln(self.f_vals[:, None] + bb).T @ self.f_counts
-            total -= special.gammaln(self.n_vals[:, None] + kk).T @ self.n_counts
+            total = lgamma_shift(self.y_vals[:, None], aa).T @ self.y_counts
+            total += lgamma_shift(self.f_vals[:, None], bb).T @ self.f_counts
+            total -= lgamma_shift(self.n_vals[:, None], kk).T @ self.n_counts
             total -= self.n_informative * (special.gammaln(aa) + special.gammaln(bb))
             total += self.n_informative * special.gammaln(kk)
             out[sl] = total
@@ -300,9 +334,9 @@ def _find_mode(counts: _Counts, prior: HyperPrior, start_u: float) -> tuple[np.n
                 ) / (4 * h**2)
     try:
         cov = np.linalg.inv(hess)
+        if not np.all(np.isfinite(np.diag(cov))) or np.any(np.diag(cov) <= 0):
+            raise np.linalg.LinAlgError  # not a maximum's curvature: fall back on the prior
         sd = np.sqrt(np.diag(cov))
-        if not np.all(np.isfinite(sd)) or np.any(np.diag(cov) <= 0):
-            raise np.linalg.LinAlgError
     except np.linalg.LinAlgError:
         sd = np.array([1.0, prior.kappa_log_sd])
     return x, np.clip(sd, 1e-4, [10.0, 2 * prior.kappa_log_sd])
@@ -377,7 +411,8 @@ def fit_grid(
     hu = u[1] - u[0]
     hv = v[1] - v[0]
     top = ld.max()
-    log_ml = float(top + np.log(np.exp(ld - top).sum() * hu * hv)) + counts.log_choose_total
+    log_ml = float(top + np.log(np.exp(ld - top).sum() * hu * hv))
+    log_ml += counts.log_choose_total + counts.log_constant
     return GridPosterior(u, v, ld, log_ml, edge_density, change, widenings,
                          rate_sd, prob, refinements)
 
