@@ -10,6 +10,30 @@ EXACT_QUANTILE_CELLS = 10_000_000
 _CHUNK_CELLS = 4_000_000
 
 
+#: From here on (both Beta parameters at least this) the Beta CDF is taken from its Edgeworth
+#: expansion (normal with a skewness term): its error is about 0.6 / min(alpha, beta), below
+#: 1e-8 here (measured against scipy's betainc), where betainc slows twentyfold (1e15 trials).
+EDGEWORTH_FROM = 1e8
+
+
+def beta_cdf(alpha: np.ndarray, beta: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """The Beta(alpha, beta) CDF at x, elementwise (same shapes)."""
+    big = np.minimum(alpha, beta) >= EDGEWORTH_FROM
+    if not big.any():
+        return special.betainc(alpha, beta, x)
+    out = np.empty(alpha.shape)
+    out[~big] = special.betainc(alpha[~big], beta[~big], x[~big])
+    a, b, xb = alpha[big], beta[big], x[big]
+    s = a + b
+    mean = a / s
+    sd = np.sqrt(a * b / (s * s * (s + 1)))
+    skew = 2 * (b - a) * np.sqrt(s + 1) / ((s + 2) * np.sqrt(a * b))
+    z = (xb - mean) / sd
+    out[big] = np.clip(special.ndtr(z) - np.exp(-0.5 * z * z) / np.sqrt(2 * np.pi) * skew / 6
+                       * (z * z - 1), 0.0, 1.0)
+    return out
+
+
 class BetaPosteriors:
     """Independent Beta(alpha_j, beta_j) posteriors, one per group."""
 
@@ -87,13 +111,18 @@ class BetaMixturePosteriors:
         return self._pair_mean()[self.index]
 
     def _pair_moments(self) -> tuple[np.ndarray, np.ndarray]:
+        """Mean and variance per pair; the variance as the mean of the components' variances
+        plus their spread around the mean (E[theta^2] - mean^2 would cancel to noise where
+        the sd is 1e-8 of the mean: a group with 1e15 trials)."""
         m1 = np.empty(len(self.y))
-        m2 = np.empty(len(self.y))
+        var = np.empty(len(self.y))
         for sl, alpha, beta in self._chunks():
             s = alpha + beta
-            m1[sl] = (alpha / s) @ self.weights
-            m2[sl] = (alpha * (alpha + 1) / (s * (s + 1))) @ self.weights
-        return m1, m2 - m1**2
+            m = alpha / s
+            m1[sl] = m @ self.weights
+            inner = m * (beta / s) / (s + 1)
+            var[sl] = (inner + (m - m1[sl, None]) ** 2) @ self.weights
+        return m1, var
 
     def moments(self) -> tuple[np.ndarray, np.ndarray]:
         """Exact posterior mean and variance per group."""
@@ -104,7 +133,7 @@ class BetaMixturePosteriors:
         out = np.empty(len(self.y))
         weights, a, b = self._cdf
         for sl, alpha, beta in self._chunks(a, b):
-            out[sl] = special.betainc(alpha, beta, x[sl, None]) @ weights
+            out[sl] = beta_cdf(alpha, beta, np.broadcast_to(x[sl, None], alpha.shape)) @ weights
         return out
 
     def _pair_pdf(self, x: np.ndarray) -> np.ndarray:

@@ -164,12 +164,20 @@ def test_mean_replicated_chi_square_is_number_of_groups(spread_checks):
         assert abs(chi.mean() - groups) < 4 * chi.std() / np.sqrt(len(chi))
 
 
-def test_mid_p_gives_one_half_when_every_replicate_ties(spread_checks):
-    # mid-p (Lancaster 1961): P(T_rep > T_obs) + 0.5 P(T_rep = T_obs). With trials >= 50 and
-    # rates near 0.2 no group is ever without a success, observed or replicated.
-    row = spread_checks["beta-binomial"].statistics.set_index("statistic")
-    zero = row.loc["zero_success_groups"]
-    assert zero["observed"] == 0 and zero["replicated_upper"] == 0
+def test_mid_p_gives_one_half_when_every_replicate_ties(spread_checks, alike):
+    # mid-p (Lancaster 1961): P(T_rep > T_obs) + 0.5 P(T_rep = T_obs), and P(T_rep >= T_obs),
+    # recomputed here from the replicates themselves
+    _, posts = alike
+    for checks in (spread_checks["beta-binomial"], ppc.check_posterior(posts["beta-binomial"])):
+        zero = checks.statistics.set_index("statistic").loc["zero_success_groups"]
+        reps = checks.replicates
+        rep = reps.loc[reps["statistic"] == "zero_success_groups", "replicated"].to_numpy()
+        obs = zero["observed"]
+        assert zero["p_value"] == pytest.approx(np.mean(rep > obs) + 0.5 * np.mean(rep == obs))
+        assert zero["p_at_least"] == pytest.approx(np.mean(rep >= obs))
+    # every group at 0.2 with 50 or more trials: no group is without a success, observed or
+    # replicated (P = 0.8^50 = 1.4e-5 per group and replicate), so every replicate ties
+    assert obs == 0 and (rep == 0).all()
     assert zero["p_value"] == 0.5 and zero["p_at_least"] == 1.0
     assert zero["verdict"] == ppc.CONSISTENT
 

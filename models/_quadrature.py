@@ -1,0 +1,160 @@
+"""Quadrature over a grid posterior: the refinement test and the population quantities.
+
+Every number the exact engine prints is checked here, between a grid and the one with nodes
+halfway between (``refinement_changes``), and the population quantities are integrated here
+(``population_summary``) rather than read from draws.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special, stats
+
+from ._gridposterior import (
+    KAPPA_RELATIVE_TOLERANCE,
+    PROBE_PAIRS,
+    PROBE_PROBABILITIES,
+    RATE_TOLERANCE_SD,
+    REFINE_RATE_SD,
+    REFINE_TOLERANCE,
+    U_BOUNDS,
+    GridPosterior,
+    distinct_pairs,
+)
+
+
+def _probe_pairs(successes, trials, means: np.ndarray) -> np.ndarray:
+    """Rows of the distinct pairs whose CDFs the refinement compares: all, or PROBE_PAIRS
+    spread evenly over the order of posterior means and over the order of trials."""
+    pairs, _ = distinct_pairs(successes, trials)
+    if len(pairs) <= PROBE_PAIRS:
+        return np.arange(len(pairs))
+    half = PROBE_PAIRS // 2
+    by_mean = np.argsort(means, kind="stable")
+    by_trials = np.argsort(pairs[:, 1], kind="stable")
+    picks = np.linspace(0, len(pairs) - 1, half).round().astype(int)
+    return np.unique(np.concatenate([by_mean[picks], by_trials[picks]]))
+
+
+def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, trials, *,
+                       full: bool = True):
+    """How much the reported quantities move from ``coarse`` to ``fine`` (nodes halfway).
+
+    Returns the largest change of a group's posterior mean (absolute); of a rate in posterior
+    sds (group means and sds; each probed group's quantiles at PROBE_PROBABILITIES, as the
+    CDF change there over density x sd; the population quantities); and of a probability
+    (the probed CDFs, shrinkage). Unless ``full``, the costly probes are skipped (the
+    probability is then inf) when the means or sds alone already ask for a finer grid.
+    """
+    mc = coarse.mixture(successes, trials, quantile_stride=None)
+    mf = fine.mixture(successes, trials, quantile_stride=None)
+    m_c, var_c = mc._pair_moments()
+    m_f, var_f = mf._pair_moments()
+    sd_f = np.sqrt(np.maximum(var_f, 1e-300))
+    mean_change = float(np.max(np.abs(m_c - m_f)))
+    rate = max(float(np.max(np.abs(m_c - m_f) / sd_f)),
+               float(np.max(np.abs(np.sqrt(np.maximum(var_c, 0)) - sd_f) / sd_f)))
+    if not full and (mean_change >= REFINE_TOLERANCE or rate >= REFINE_RATE_SD):
+        return mean_change, rate, np.inf
+    rows = _probe_pairs(successes, trials, m_f)
+    pairs, _ = distinct_pairs(successes, trials)
+    sub_y, sub_n = pairs[rows, 0], pairs[rows, 1]
+    pc = coarse.mixture(sub_y, sub_n, quantile_stride=None)
+    pf = fine.mixture(sub_y, sub_n, quantile_stride=None)
+    m1, var = pf._pair_moments()
+    var = np.maximum(var, 1e-300)
+    common = np.maximum(m1 * (1 - m1) / var - 1, 1e-8)
+    prob = 0.0
+    for q in PROBE_PROBABILITIES:
+        x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
+        delta = np.abs(pc._pair_cdf(x) - pf._pair_cdf(x))
+        density = pf._pair_pdf(x)
+        prob = max(prob, float(delta.max()))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            shift = np.where(density > 0, delta / (density * np.sqrt(var)), 0.0)
+        rate = max(rate, float(np.nanmax(shift)))
+    trial_values = np.unique(np.asarray(trials, dtype=float))
+    prob = max(prob, float(np.max(np.abs(coarse.shrinkage(trial_values)
+                                         - fine.shrinkage(trial_values)))))
+    pop_c, pop_f = population_summary(coarse), population_summary(fine)
+    for name, f in pop_f.items():
+        c = pop_c[name]
+        if name == "kappa":  # relative, on its log scale
+            moved = np.abs(np.log(np.asarray(c[:4])) - np.log(np.asarray(f[:4])))
+            rate = max(rate, float(np.max(moved)) * RATE_TOLERANCE_SD / KAPPA_RELATIVE_TOLERANCE)
+        else:
+            moved = np.abs(np.asarray(c[:4]) - np.asarray(f[:4])) / max(f[4], 1e-300)
+            rate = max(rate, float(np.max(moved)))
+    return mean_change, rate, prob
+
+
+#: Nodes per axis (about) of the finer grid on which population quantiles are read, from a
+#: bicubic spline of the log density: a quantile to a small share of a cell, where reading it
+#: off the nodes would be off by up to half a cell.
+QUANTILE_NODES = 600
+
+
+def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.ndarray:
+    order = np.argsort(values, kind="stable")
+    v, w = values[order], weights[order]
+    cdf = np.cumsum(w) - 0.5 * w  # each sub-node's mass centred on its value
+    return np.interp(probs, cdf / w.sum(), v)
+
+
+def population_summary(grid: GridPosterior, level: float = 0.95) -> dict[str, tuple]:
+    """Mean, median, central interval and sd of mu, kappa, between-group sd and new_group_rate.
+
+    By quadrature over the grid, not from draws. Means and sds are sums over the nodes (the
+    trapezoid rule on a density that vanishes at the grid's edges). Quantiles are read on a
+    finer grid (QUANTILE_NODES per axis) weighted by a bicubic spline of the log density,
+    with the ridge recomputed at its v nodes (kappa from its marginal, mu and the
+    between-group sd from their values there); the new group's rate is the exact Beta
+    mixture of a group with no trials.
+    """
+    from scipy.interpolate import RectBivariateSpline
+
+    w = grid.weights
+    probs = np.array([0.5, (1 - level) / 2, (1 + level) / 2])
+    mu = special.expit(grid.u)
+    kappa = np.broadcast_to(np.exp(grid.v)[None, :], mu.shape)
+    spread = mu * (1 - mu) / (kappa + 1)
+
+    def moments(x):
+        mean = float((w * x).sum())
+        return mean, float(np.sqrt(max((w * x * x).sum() - mean**2, 0.0)))
+
+    k = max(2, -(-QUANTILE_NODES // (len(grid.z) - 1)))
+    fine_z = np.linspace(grid.z[0], grid.z[-1], (len(grid.z) - 1) * k + 1)
+    fine_v = np.linspace(grid.v[0], grid.v[-1], (len(grid.v) - 1) * k + 1)
+    rel = np.maximum(grid.log_density - grid.log_density.max(), -80.0)
+    order = min(3, len(grid.z) - 1, len(grid.v) - 1)
+    spline = RectBivariateSpline(grid.z, grid.v, rel, kx=order, ky=order)
+    fine_w = np.exp(np.minimum(spline(fine_z, fine_v), 0.0))
+    fine_w[:, [0, -1]] *= 0.5  # trapezoid weights: the edges are half cells
+    fine_w[[0, -1], :] *= 0.5
+    fine_w /= fine_w.sum()
+    if grid.ridge is not None:
+        centre, scale = grid.ridge(fine_v, near=grid)
+    else:
+        centre, scale = np.interp(fine_v, grid.v, grid.centre), np.interp(fine_v, grid.v,
+                                                                            grid.scale)
+    fine_mu = special.expit(np.clip(centre[None, :] + scale[None, :] * fine_z[:, None],
+                                    *U_BOUNDS))
+
+    out: dict[str, tuple] = {}
+    mean, sd = moments(mu)
+    q = _weighted_quantiles(fine_mu.ravel(), fine_w.ravel(), probs)
+    out["mu"] = (mean, *map(float, q), sd)
+    mean, sd = moments(kappa)
+    q = np.exp(_weighted_quantiles(fine_v, fine_w.sum(axis=0), probs))
+    out["kappa"] = (mean, *map(float, q), sd)
+    mean, sd = moments(np.sqrt(spread))
+    fine_sd = np.sqrt(fine_mu * (1 - fine_mu) / (np.exp(fine_v)[None, :] + 1))
+    q = _weighted_quantiles(fine_sd.ravel(), fine_w.ravel(), probs)
+    out["between_group_sd"] = (mean, *map(float, q), sd)
+    new = grid.mixture(np.zeros(1, dtype=np.int64), np.zeros(1, dtype=np.int64),
+                       quantile_stride=None)
+    mean, var = new.moments()
+    out["theta_new"] = (float(mean[0]), *(float(new.ppf(q)[0]) for q in probs),
+                        float(np.sqrt(var[0])))
+    return out
