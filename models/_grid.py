@@ -64,16 +64,20 @@ def _lgamma_base(x: np.ndarray) -> np.ndarray:
     return np.where(x > 0, special.gammaln(np.where(x > 0, x, 1.0)), 0.0)
 
 
-def lgamma_shift(x: np.ndarray, a: np.ndarray) -> np.ndarray:
+def lgamma_shift(x: np.ndarray, a: np.ndarray, base: np.ndarray | None = None) -> np.ndarray:
     """lgamma(x + a) - lgamma(x) (lgamma(a) at x = 0), stable for x up to 1e15 and beyond.
 
     Broadcasts ``x`` (counts, >= 0) against ``a`` (> 0). For x >= STIRLING_FROM the
     difference of Stirling's series: (x - 1/2) log1p(a/x) + a log(x + a) - a
     + 1/(12 (x + a)) - 1/(12 x), every term small or exact, so no cancellation.
     """
-    x, a = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(a, dtype=float))
+    x = np.asarray(x, dtype=float)
+    base = _lgamma_base(x) if base is None else base  # ``base``: lgamma_base(x), precomputed
+    if x.max(initial=0.0) < STIRLING_FROM:
+        return special.gammaln(x + a) - base
+    x, a = np.broadcast_arrays(x, np.asarray(a, dtype=float))
     big = x >= STIRLING_FROM
-    out = special.gammaln(x + a) - _lgamma_base(x)
+    out = special.gammaln(x + a) - base
     if big.any():
         xb, ab = x[big], a[big]
         out[big] = ((xb - 0.5) * np.log1p(ab / xb) + ab * np.log(xb + ab) - ab
@@ -96,9 +100,9 @@ class _Counts:
         self.log_choose_total = float(log_choose.sum())
         # what loglik leaves out (it does not vary with mu and kappa): sum of lgamma(y) +
         # lgamma(f) - lgamma(n) over groups; the log marginal likelihood adds it back
-        self.log_constant = float(_lgamma_base(self.y_vals) @ self.y_counts
-                                  + _lgamma_base(self.f_vals) @ self.f_counts
-                                  - _lgamma_base(self.n_vals) @ self.n_counts)
+        self._bases = [_lgamma_base(x) for x in (self.y_vals, self.f_vals, self.n_vals)]
+        self.log_constant = float(self._bases[0] @ self.y_counts + self._bases[1] @ self.f_counts
+                                  - self._bases[2] @ self.n_counts)
 
     def loglik(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
         """Log marginal likelihood at points (u, v), less binomial coefficients and
@@ -117,9 +121,10 @@ class _Counts:
         for s in range(0, len(u), step):
             sl = slice(s, s + step)
             aa, bb, kk = a[sl], b[sl], kappa[sl]
-            total = lgamma_shift(self.y_vals[:, None], aa).T @ self.y_counts
-            total += lgamma_shift(self.f_vals[:, None], bb).T @ self.f_counts
-            total -= lgamma_shift(self.n_vals[:, None], kk).T @ self.n_counts
+            by, bf, bn = self._bases
+            total = lgamma_shift(self.y_vals[:, None], aa, by[:, None]).T @ self.y_counts
+            total += lgamma_shift(self.f_vals[:, None], bb, bf[:, None]).T @ self.f_counts
+            total -= lgamma_shift(self.n_vals[:, None], kk, bn[:, None]).T @ self.n_counts
             total -= self.n_informative * (special.gammaln(aa) + special.gammaln(bb))
             total += self.n_informative * special.gammaln(kk)
             out[sl] = total
@@ -153,26 +158,30 @@ def _conditional_ridge(counts: _Counts, prior: HyperPrior, v: np.ndarray,
     def value(u, v):
         return counts.loglik(u, v) + _log_prior(u, v, prior)
 
+    f = value(u, v)
     for _ in range(100):
-        ua, va = u[active], v[active]
+        idx = np.flatnonzero(active)
+        ua, va = u[idx], v[idx]
         slope, curve = _slope_curvature(counts, prior, ua, va)
         concave = curve < 0
         newton = np.where(concave, -slope / np.where(concave, curve, -1.0), np.sign(slope))
         at_bound = ((ua <= U_BOUNDS[0]) & (slope <= 0)) | ((ua >= U_BOUNDS[1]) & (slope >= 0))
         done = (concave & (slope * newton < 1e-10)) | at_bound
-        step = np.clip(newton, -2.0, 2.0)
-        f = value(ua, va)
-        for _ in range(40):
-            trial = np.clip(ua + step, *U_BOUNDS)
-            f_trial = value(trial, va)
-            worse = ~(f_trial >= f - 1e-12) & ~done
-            if not worse.any():
-                break
-            step = np.where(worse, 0.5 * step, step)
-        better = (f_trial >= f - 1e-12) & ~done
-        done |= np.abs(trial - ua) < 1e-12
-        u[active] = np.where(better, trial, ua)
-        idx = np.flatnonzero(active)
+        go = np.flatnonzero(~done)
+        if len(go):
+            base, vg, fg = ua[go], va[go], f[idx[go]]
+            step = np.clip(newton[go], -2.0, 2.0)
+            for _ in range(40):
+                trial = np.clip(base + step, *U_BOUNDS)
+                f_trial = value(trial, vg)
+                worse = ~(f_trial >= fg - 1e-12)
+                if not worse.any():
+                    break
+                step = np.where(worse, 0.5 * step, step)
+            ok = f_trial >= fg - 1e-12
+            u[idx[go[ok]]] = trial[ok]
+            f[idx[go[ok]]] = f_trial[ok]
+            done[go] |= ~ok | (np.abs(trial - base) < 1e-12)
         active[idx[done]] = False
         if not active.any():
             break
@@ -262,12 +271,9 @@ def fit_grid(
     pooled = (successes.sum() + 0.5) / (trials.sum() + 1.0)
     start = float(special.logit(pooled))
 
-    def ridge(v, near=None):
-        """(centre, scale) at log kappa ``v``; ``near``: a grid to start from."""
-        first = start
-        if near is not None:  # between the nodes of a grid: start from its interpolation
-            first = np.interp(v, near.v, near.centre)
-        return _conditional_ridge(counts, prior, v, first)
+    def ridge(v):
+        """(centre, scale) at log kappa ``v``."""
+        return _conditional_ridge(counts, prior, v, start)
 
     def profile(v):  # log density of v alone, by Laplace across the ridge
         centre, scale = ridge(v)
@@ -290,8 +296,7 @@ def fit_grid(
     )
 
     def posterior(z, v, centre, scale, ld):
-        return GridPosterior(z, v, centre, scale, ld, 0.0, edge_density, np.nan, widenings,
-                             ridge=ridge)
+        return GridPosterior(z, v, centre, scale, ld, 0.0, edge_density, np.nan, widenings)
 
     # refinement: the same box with nodes halfway between; compare every reported quantity
     change = rate_sd = prob = np.inf
@@ -311,4 +316,4 @@ def fit_grid(
     log_ml = float(top + np.log(np.exp(ld - top).sum() * (z[1] - z[0]) * (v[1] - v[0])))
     log_ml += counts.log_choose_total + counts.log_constant
     return GridPosterior(z, v, centre, scale, ld, log_ml, edge_density, change, widenings,
-                         rate_sd, prob, refinements, ridge=ridge)
+                         rate_sd, prob, refinements)
