@@ -265,8 +265,14 @@ def fit_grid(
     *,
     points: int = 25,
     width: float = 7.0,
+    means_only: bool = False,
 ) -> GridPosterior:
-    """Lay the grid along the ridge, check and refine it; return the hyper-posterior on it."""
+    """Lay the grid along the ridge, check and refine it; return the hyper-posterior on it.
+
+    ``means_only`` refines until the group means settle and checks nothing else: for
+    internal refits that use only sums over the grid (leaving one group out), never for
+    numbers that are printed.
+    """
     counts = _Counts(successes, trials)
     pooled = (successes.sum() + 0.5) / (trials.sum() + 1.0)
     start = float(special.logit(pooled))
@@ -305,11 +311,13 @@ def fit_grid(
         fine_nodes = evaluate(lo, hi, 2 * points - 1)
         change, rate_sd, prob = refinement_changes(
             posterior(*nodes), posterior(*fine_nodes), successes, trials,
-            full=step == MAX_REFINEMENTS - 1,
+            full=step == MAX_REFINEMENTS - 1, means_only=means_only,
         )
         nodes, points = fine_nodes, 2 * points - 1
         refinements += 1
-        if change < REFINE_TOLERANCE and rate_sd < REFINE_RATE_SD and prob < REFINE_PROBABILITY:
+        if change < REFINE_TOLERANCE and (
+            means_only or (rate_sd < REFINE_RATE_SD and prob < REFINE_PROBABILITY)
+        ):
             break
     z, v, centre, scale, ld = nodes
     top = ld.max()

@@ -146,7 +146,10 @@ class GridPosterior:
             coarse = self.mixture(
                 successes, trials, mass=1 - 1e-10, stride=quantile_stride, quantile_stride=None
             )
-        sub_mu, sub_kappa, sub_w = self.cdf_points(stride, CDF_MASS)
+        def components():
+            sub_mu, sub_kappa, sub_w = self.cdf_points(stride, CDF_MASS)
+            return sub_w, sub_mu * sub_kappa, (1 - sub_mu) * sub_kappa
+
         return BetaMixturePosteriors(
             w[keep],
             mu[keep] * kappa[keep],
@@ -155,7 +158,7 @@ class GridPosterior:
             pairs[:, 1],
             index.ravel(),
             quantile_source=coarse,
-            cdf_components=(sub_w, sub_mu * sub_kappa, (1 - sub_mu) * sub_kappa),
+            cdf_components=components,
         )
 
     def cdf_points(self, stride: int = 1, mass: float = 1 - 1e-12):

@@ -72,24 +72,33 @@ class BetaMixturePosteriors:
         pair_trials: np.ndarray,
         index: np.ndarray,
         quantile_source: BetaMixturePosteriors | None = None,
-        cdf_components: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+        cdf_components=None,
     ) -> None:
         self.weights = weights / weights.sum()
         self.quantile_source = quantile_source
         self.a = a
         self.b = b
         # the CDF and density may use a finer mixture of the same posterior (sub-nodes where
-        # theta given (mu, kappa) is much narrower than a grid cell); means use the nodes
-        if cdf_components is None:
-            self._cdf = (self.weights, a, b)
-        else:
-            cw, ca, cb = cdf_components
-            self._cdf = (cw / cw.sum(), ca, cb)
+        # theta given (mu, kappa) is much narrower than a grid cell; given as a function, so
+        # it is built only when a CDF is asked for); means use the nodes
+        self._cdf_source = cdf_components
+        self._cdf_cache = None
         self.y = pair_successes.astype(float)
         self.n = pair_trials.astype(float)
         self.index = index
-        cells = len(self.y) * len((quantile_source or self)._cdf[0])
+        cells = len(self.y) * len((quantile_source or self).weights)
         self.exact_quantiles = cells <= EXACT_QUANTILE_CELLS
+
+    @property
+    def _cdf(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        if self._cdf_cache is None:
+            source = self._cdf_source
+            if source is None:
+                self._cdf_cache = (self.weights, self.a, self.b)
+            else:
+                cw, ca, cb = source() if callable(source) else source
+                self._cdf_cache = (cw / cw.sum(), ca, cb)
+        return self._cdf_cache
 
     def _chunks(self, a=None, b=None):
         a = self.a if a is None else a

@@ -37,7 +37,7 @@ def _probe_pairs(successes, trials, means: np.ndarray) -> np.ndarray:
 
 
 def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, trials, *,
-                       full: bool = True):
+                       full: bool = True, means_only: bool = False):
     """How much the reported quantities move from ``coarse`` to ``fine`` (nodes halfway).
 
     Returns the largest change of a group's posterior mean (absolute); of a rate in posterior
@@ -45,6 +45,8 @@ def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, tr
     CDF change there over density x sd; the population quantities); and of a probability
     (the probed CDFs, shrinkage). Unless ``full``, the costly probes are skipped (the
     probability is then inf) when the means or sds alone already ask for a finer grid.
+    ``means_only``: the means alone (the rate and probability are then nan), for refits
+    that use only sums over the grid (leaving one group out).
     """
     mc = coarse.mixture(successes, trials, quantile_stride=None)
     mf = fine.mixture(successes, trials, quantile_stride=None)
@@ -52,6 +54,8 @@ def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, tr
     m_f, var_f = mf._pair_moments()
     sd_f = np.sqrt(np.maximum(var_f, 1e-300))
     mean_change = float(np.max(np.abs(m_c - m_f)))
+    if means_only:
+        return mean_change, np.nan, np.nan
     rate = max(float(np.max(np.abs(m_c - m_f) / sd_f)),
                float(np.max(np.abs(np.sqrt(np.maximum(var_c, 0)) - sd_f) / sd_f)))
     if not full and (mean_change >= REFINE_TOLERANCE or rate >= REFINE_RATE_SD):
@@ -91,7 +95,7 @@ def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, tr
 #: Nodes per axis (about) of the finer grid on which population quantiles are read, from a
 #: bicubic spline of the log density: a quantile to a small share of a cell, where reading it
 #: off the nodes would be off by up to half a cell.
-QUANTILE_NODES = 300
+QUANTILE_NODES = 600
 
 
 def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.ndarray:

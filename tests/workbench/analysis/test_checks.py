@@ -408,9 +408,9 @@ def test_groups_without_trials_are_left_out():
 def test_single_group_fit_still_gets_its_checks():
     # nothing is left to refit when the only group is left out: PSIS stays, and a Pareto k
     # above the threshold names the group as unresolved. With one group k hovers near 0.7
-    # from seed to seed, so three seeds see both sides of the threshold.
+    # from seed to seed (0.28 to 0.84 over these six), so the seeds see both sides of it.
     seen = set()
-    for seed in (1, 2, 3):
+    for seed in range(1, 7):
         run = api.fit(pd.DataFrame({"group": ["a"], "successes": [3], "trials": [10]}),
                       seed=seed)
         loo = run.documents["checks"]["loo"]
