@@ -121,6 +121,10 @@ class BetaBinomial(_Estimator):
 
     name = "beta-binomial"
     engines = ("exact", "mcmc")
+    #: Refine the exact grid on the means only, skipping the tolerance checks of printed
+    #: numbers: for internal bulk refits that use draws (simulation-based calibration's
+    #: replicates), never for a user's fit. Not a setting: it is not in get_params.
+    _grid_means_only = False
 
     def __init__(
         self,
@@ -172,7 +176,8 @@ class BetaBinomial(_Estimator):
         extra: dict = {}
         stats_ = None
         if engine == "exact":
-            grid = fit_grid(data.successes, data.trials, self.prior_)
+            grid = fit_grid(data.successes, data.trials, self.prior_,
+                            means_only=self._grid_means_only)
             self.grid_ = grid
             self.exact_ = grid.mixture(data.successes, data.trials)
             mu, kappa = grid.draw(size, rng)
