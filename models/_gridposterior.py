@@ -67,6 +67,13 @@ def distinct_pairs(successes, trials) -> tuple[np.ndarray, np.ndarray]:
     return pairs, index.ravel()
 
 
+def mean_shrinkage(kappa: np.ndarray, weights: np.ndarray, trials) -> np.ndarray:
+    """The weighted mean of kappa / (kappa + n) over ``kappa`` for each n in ``trials``
+    (once per distinct n): a grid's points and weights, or draws with equal weights."""
+    uniq, inv = np.unique(np.asarray(trials, dtype=float), return_inverse=True)
+    return ((kappa[None, :] / (kappa[None, :] + uniq[:, None])) @ weights)[inv.ravel()]
+
+
 @dataclass
 class GridPosterior:
     """The hyper-posterior on a grid that follows its ridge, and what was checked about it.
@@ -207,9 +214,7 @@ class GridPosterior:
     def shrinkage(self, trials: np.ndarray) -> np.ndarray:
         """Posterior mean of kappa / (kappa + n) for each n in ``trials``."""
         _, kappa, w = self.points()
-        n = np.asarray(trials, dtype=float)
-        uniq, inv = np.unique(n, return_inverse=True)
-        return ((kappa[None, :] / (kappa[None, :] + uniq[:, None])) @ w)[inv.ravel()]
+        return mean_shrinkage(kappa, w, trials)
 
     def draw(self, size: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
         """Independent draws of (mu, kappa): a grid cell by weight, then uniform within it in

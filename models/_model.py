@@ -13,6 +13,7 @@ from ._estimator import (  # noqa: F401  (SUMMARY_COLUMNS is re-exported)
     _Estimator,
 )
 from ._grid import V_BOUNDS, HyperPrior, fit_grid, population_summary
+from ._gridposterior import mean_shrinkage
 from ._hierarchies import LogitNormal, Nested
 from ._mcmc import SamplerSettings, sample_hyper
 from ._mixture import BetaPosteriors
@@ -241,8 +242,7 @@ class BetaBinomial(_Estimator):
         if grid is not None:
             return grid.shrinkage(n)
         kappa = self.idata_.posterior["kappa"].values.ravel()
-        uniq, inv = np.unique(n, return_inverse=True)
-        return (kappa[None, :] / (kappa[None, :] + uniq[:, None])).mean(axis=1)[inv.ravel()]
+        return mean_shrinkage(kappa, np.full(len(kappa), 1.0 / len(kappa)), n)
 
 
 MODELS: dict[str, type[_Estimator]] = {

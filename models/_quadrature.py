@@ -23,10 +23,9 @@ from ._gridposterior import (
 )
 
 
-def _probe_pairs(successes, trials, means: np.ndarray) -> np.ndarray:
+def _probe_pairs(pairs: np.ndarray, means: np.ndarray) -> np.ndarray:
     """Rows of the distinct pairs whose CDFs the refinement compares: all, or PROBE_PAIRS
     spread evenly over the order of posterior means and over the order of trials."""
-    pairs, _ = distinct_pairs(successes, trials)
     if len(pairs) <= PROBE_PAIRS:
         return np.arange(len(pairs))
     half = PROBE_PAIRS // 2
@@ -60,8 +59,8 @@ def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, tr
                float(np.max(np.abs(np.sqrt(np.maximum(var_c, 0)) - sd_f) / sd_f)))
     if not full and (mean_change >= REFINE_TOLERANCE or rate >= REFINE_RATE_SD):
         return mean_change, rate, np.inf
-    rows = _probe_pairs(successes, trials, m_f)
     pairs, _ = distinct_pairs(successes, trials)
+    rows = _probe_pairs(pairs, m_f)
     sub_y, sub_n = pairs[rows, 0], pairs[rows, 1]
     pc = coarse.mixture(sub_y, sub_n, quantile_stride=None)
     pf = fine.mixture(sub_y, sub_n, quantile_stride=None)
