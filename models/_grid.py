@@ -304,16 +304,20 @@ def fit_grid(
     def posterior(z, v, centre, scale, ld):
         return GridPosterior(z, v, centre, scale, ld, 0.0, edge_density, np.nan, widenings)
 
-    # refinement: the same box with nodes halfway between; compare every reported quantity
+    # refinement: the same box with nodes halfway between; compare every reported quantity.
+    # Each finer grid is the next step's coarser one, and its memo (what was computed from
+    # its nodes) goes with it, and to the posterior returned.
     change = rate_sd = prob = np.inf
     refinements = 0
+    current = posterior(*nodes)
     for step in range(MAX_REFINEMENTS):
         fine_nodes = evaluate(lo, hi, 2 * points - 1)
+        fine = posterior(*fine_nodes)
         change, rate_sd, prob = refinement_changes(
-            posterior(*nodes), posterior(*fine_nodes), successes, trials,
+            current, fine, successes, trials,
             full=step == MAX_REFINEMENTS - 1, means_only=means_only,
         )
-        nodes, points = fine_nodes, 2 * points - 1
+        nodes, points, current = fine_nodes, 2 * points - 1, fine
         refinements += 1
         if change < REFINE_TOLERANCE and (
             means_only or (rate_sd < REFINE_RATE_SD and prob < REFINE_PROBABILITY)
@@ -324,4 +328,4 @@ def fit_grid(
     log_ml = float(top + np.log(np.exp(ld - top).sum() * (z[1] - z[0]) * (v[1] - v[0])))
     log_ml += counts.log_choose_total + counts.log_constant
     return GridPosterior(z, v, centre, scale, ld, log_ml, edge_density, change, widenings,
-                         rate_sd, prob, refinements)
+                         rate_sd, prob, refinements, memo=current.memo)

@@ -6,7 +6,7 @@ exactly) and ``_grid`` (laying and refining the grid) build on it.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import special
@@ -99,6 +99,9 @@ class GridPosterior:
     refinement_rate_sd: float = np.nan
     refinement_probability: float = np.nan
     refinements: int = 0
+    #: results computed from the nodes alone (population summaries by level): a grid with the
+    #: same nodes may share it, so the refinement's last grid hands its work to the fit's
+    memo: dict = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def u(self) -> np.ndarray:

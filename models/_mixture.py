@@ -83,6 +83,7 @@ class BetaMixturePosteriors:
         # it is built only when a CDF is asked for); means use the nodes
         self._cdf_source = cdf_components
         self._cdf_cache = None
+        self._log_beta = None
         self.y = pair_successes.astype(float)
         self.n = pair_trials.astype(float)
         self.index = index
@@ -148,14 +149,15 @@ class BetaMixturePosteriors:
     def _pair_pdf(self, x: np.ndarray) -> np.ndarray:
         out = np.empty(len(self.y))
         weights, a, b = self._cdf
-        for sl, alpha, beta in self._chunks(a, b):
+        # log B(alpha, beta) does not depend on x: kept between calls (Newton steps) while
+        # it is small
+        if self._log_beta is None and len(self.y) * len(a) <= _CHUNK_CELLS:
+            self._log_beta = [special.betaln(alpha, beta) for _, alpha, beta in self._chunks(a, b)]
+        for k, (sl, alpha, beta) in enumerate(self._chunks(a, b)):
             xs = x[sl, None]
+            log_beta = special.betaln(alpha, beta) if self._log_beta is None else self._log_beta[k]
             with np.errstate(divide="ignore", invalid="ignore"):
-                logpdf = (
-                    special.xlogy(alpha - 1, xs)
-                    + special.xlog1py(beta - 1, -xs)
-                    - special.betaln(alpha, beta)
-                )
+                logpdf = special.xlogy(alpha - 1, xs) + special.xlog1py(beta - 1, -xs) - log_beta
             out[sl] = np.exp(logpdf) @ weights
         return out
 

@@ -97,11 +97,45 @@ def refinement_changes(coarse: GridPosterior, fine: GridPosterior, successes, tr
 QUANTILE_NODES = 600
 
 
-def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.ndarray:
+#: Bins by which _weighted_quantiles finds where each quantile lies before sorting only there.
+QUANTILE_BINS = 1024
+
+
+def _sorted_quantiles(values, weights, probs, mass_below=0.0, total=None):
     order = np.argsort(values, kind="stable")
     v, w = values[order], weights[order]
-    cdf = np.cumsum(w) - 0.5 * w  # each sub-node's mass centred on its value
-    return np.interp(probs, cdf / w.sum(), v)
+    cdf = mass_below + np.cumsum(w) - 0.5 * w  # each sub-node's mass centred on its value
+    return np.interp(np.asarray(probs) * (w.sum() if total is None else total), cdf, v)
+
+
+def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.ndarray:
+    """Quantiles of the weighted points, each point's mass centred on its value and the CDF
+    interpolated linearly between them.
+
+    The same as sorting every point, but only the points of the bins around each quantile
+    are sorted (with the bins' mass below them): the two points around a quantile lie in its
+    bin or in the nearest non-empty bins on either side.
+    """
+    lo, hi = float(values.min()), float(values.max())
+    if values.size <= 8 * QUANTILE_BINS or not hi > lo:
+        return _sorted_quantiles(values, weights, probs)
+    scaled = (values - lo) * (QUANTILE_BINS / (hi - lo))
+    bins = np.minimum(scaled.astype(np.intp), QUANTILE_BINS - 1)
+    mass = np.bincount(bins, weights=weights, minlength=QUANTILE_BINS)
+    below = np.concatenate([[0.0], np.cumsum(mass)])
+    total = below[-1]
+    filled = np.flatnonzero(mass > 0)
+    out = np.empty(len(probs))
+    for i, p in enumerate(probs):
+        at = min(int(np.searchsorted(below, p * total, side="right")) - 1, QUANTILE_BINS - 1)
+        k = int(np.searchsorted(filled, at))  # filled[k] >= at
+        first = filled[max(k - 1, 0)]
+        last = filled[min(k + 1, len(filled) - 1)] if k < len(filled) and filled[k] == at \
+            else filled[min(k, len(filled) - 1)]
+        inside = (bins >= first) & (bins <= last)
+        out[i] = _sorted_quantiles(values[inside], weights[inside], [p], below[first],
+                                   total)[0]
+    return out
 
 
 def population_summary(grid: GridPosterior, level: float = 0.95) -> dict[str, tuple]:
@@ -112,8 +146,15 @@ def population_summary(grid: GridPosterior, level: float = 0.95) -> dict[str, tu
     finer grid (QUANTILE_NODES per axis) weighted by a bicubic spline of the log density,
     the ridge between nodes by cubic splines (kappa from its marginal, mu and the
     between-group sd from their values there); the new group's rate is the exact Beta
-    mixture of a group with no trials.
+    mixture of a group with no trials. Kept in ``grid.memo``: computed once per grid and level.
     """
+    key = ("population", float(level))
+    if key not in grid.memo:
+        grid.memo[key] = _population_summary(grid, level)
+    return grid.memo[key]
+
+
+def _population_summary(grid: GridPosterior, level: float) -> dict[str, tuple]:
     from scipy.interpolate import CubicSpline, RectBivariateSpline
 
     w = grid.weights
@@ -153,8 +194,8 @@ def population_summary(grid: GridPosterior, level: float = 0.95) -> dict[str, tu
     fine_sd = np.sqrt(fine_mu * (1 - fine_mu) / (np.exp(fine_v)[None, :] + 1))
     q = _weighted_quantiles(fine_sd.ravel(), fine_w.ravel(), probs)
     out["between_group_sd"] = (mean, *map(float, q), sd)
-    new = grid.mixture(np.zeros(1, dtype=np.int64), np.zeros(1, dtype=np.int64),
-                       quantile_stride=None)
+    # solved on the grid before its last refinement and polished on this one, as the groups'
+    new = grid.mixture(np.zeros(1, dtype=np.int64), np.zeros(1, dtype=np.int64))
     mean, var = new.moments()
     out["theta_new"] = (float(mean[0]), *(float(new.ppf(q)[0]) for q in probs),
                         float(np.sqrt(var[0])))
