@@ -405,6 +405,7 @@ def test_groups_without_trials_are_left_out():
     assert checks.info["groups_with_trials"] == 5
 
 
+@pytest.mark.slow  # six whole fits of a one-group table (about 1.5 s each: kappa spans its range)
 def test_single_group_fit_still_gets_its_checks():
     # nothing is left to refit when the only group is left out: PSIS stays, and a Pareto k
     # above the threshold names the group as unresolved. With one group k hovers near 0.7
