@@ -64,6 +64,7 @@ def test_partial_pooling_with_one_huge_group_is_ready_and_right(frame):
             & (small["posterior_mean"] < small["upper"])).all()
 
 
+@pytest.mark.slow  # two fits where kappa is left to its prior (about 2.5 s)
 def test_rates_at_exactly_zero_and_one_mirror_each_other():
     # the Beta prior on the population mean is symmetric (Beta(1, 1)), so swapping successes
     # and failures must mirror every estimate: theta -> 1 - theta (a property of the model)

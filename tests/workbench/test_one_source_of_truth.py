@@ -55,8 +55,16 @@ def test_a_bad_number_is_one_error_line(tmp_path, capsys):
     assert not (tmp_path / "run").exists()
 
 
-def test_the_same_bad_number_reads_the_same_in_every_command(reported, capsys):
-    assert main(["rank", str(reported), "--level", "1.5"]) == 2
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("runs") / "run"
+    assert main(["fit", str(api.demo_data_path()), *DEMO_COLUMNS, "--seed", "3",
+                 "--out", str(folder)]) == 0
+    return folder
+
+
+def test_the_same_bad_number_reads_the_same_in_every_command(fitted, capsys):
+    assert main(["rank", str(fitted), "--level", "1.5"]) == 2
     err = capsys.readouterr().err.splitlines()
     assert err == ["error: --level 1.5: must be a number in (0, 1); see 'workbench rank --help'"]
 
@@ -131,11 +139,11 @@ def test_compare_refuses_columns_no_model_uses(tmp_path, capsys):
     assert not (tmp_path / "c").exists()
 
 
-def test_a_run_folder_reads_back_as_a_small_object(reported):
-    folder = api.open_run(reported)
+def test_a_run_folder_reads_back_as_a_small_object(fitted):
+    folder = api.open_run(fitted)
     assert len(repr(folder)) < 1000 and "RunFolder(" in repr(folder)
     assert "READY" in folder._repr_html_()
-    assert Path(folder.path) == reported
+    assert Path(folder.path) == fitted
 
 
 def test_a_missing_column_is_named_by_the_callers_spelling(tmp_path, capsys):

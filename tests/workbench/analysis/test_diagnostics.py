@@ -17,6 +17,9 @@ from workbench.analysis.diagnostics import (
 from workbench.cli.text import format_diagnostics
 
 COUNTS = GroupCounts(["a", "b", "c"], [1, 5, 9], [10, 10, 10])
+#: for the exact engine's gate: groups that pin kappa down (three groups of ten leave it to
+#: the prior, and the grid then refines four times: seconds for a test of the gate)
+EXACT_COUNTS = GroupCounts(["a", "b", "c", "d"], [2, 15, 30, 8], [40, 60, 80, 30])
 
 
 def fake_mcmc(offset: float, draws=500, seed=0, diverging=0):
@@ -79,7 +82,7 @@ def test_divergences_and_thresholds_are_configurable():
 
 
 def test_exact_engine_passes_by_construction_and_says_so():
-    m = BetaBinomial(random_seed=0).fit(COUNTS)
+    m = BetaBinomial(random_seed=0).fit(EXACT_COUNTS)
     d = diagnose(m.idata_)
     assert d.verdict == READY
     assert any("by construction" in n for n in d.notes)
@@ -87,7 +90,7 @@ def test_exact_engine_passes_by_construction_and_says_so():
 
 
 def test_exact_grid_problems_fail_the_gate():
-    m = BetaBinomial(random_seed=0).fit(COUNTS)
+    m = BetaBinomial(random_seed=0).fit(EXACT_COUNTS)
     m.idata_.posterior.attrs["grid_refinement_change"] = 1e-3
     d = diagnose(m.idata_)
     assert d.verdict == NOT_READY

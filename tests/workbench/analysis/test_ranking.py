@@ -156,6 +156,7 @@ def test_target_flags_false_share_within_level(target_runs):
     assert np.mean(shares) <= level + 0.03, shares
 
 
+@pytest.mark.slow  # a simulation: many fits on data sets with known truth (about 2 s)
 def test_target_probabilities_calibrated(target_runs):
     # calibration (Dawid 1982): among groups given P(above target) near p, a share near p is
     # truly above; binned reliability over simulated data sets with known truth

@@ -102,6 +102,7 @@ def test_partial_counts_with_repeats_and_words_equal_the_pandas_reader(tmp_path,
     assert got.reconciliation["groups_on_several_rows"] == 50
 
 
+@pytest.mark.slow  # starts a two-worker Dask cluster (about 5 s with its start and stop)
 def test_bad_rows_in_several_partitions_give_the_pandas_readers_message(tmp_path, client):
     frame = _events_frame(rows=4_000).astype({"done": str})
     frame.loc[[3, 1_900, 2_500, 3_999], "done"] = ["maybe", "2", "", "yes!"]

@@ -88,6 +88,7 @@ def test_report_has_every_section_and_the_verdict(html):
         assert caution.replace("'", "&#39;") in html
 
 
+@pytest.mark.slow  # fits and renders a whole report with its figures (about 4 s)
 def test_user_strings_are_text_never_markup(html):
     assert XSS not in html and IMG not in html
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
@@ -97,6 +98,7 @@ def test_user_strings_are_text_never_markup(html):
     assert "onerror=" not in html.replace("onerror=alert(2)&gt;", "")
 
 
+@pytest.mark.slow  # fits and renders a whole report with its figures (about 4 s)
 def test_page_is_self_contained_and_only_its_own_script_may_run(html):
     assert not re.search(r"""(?:src|href)\s*=\s*["']?(?:https?:)?//""", html)
     assert "@import" not in html and "url(" not in html
@@ -109,6 +111,7 @@ def test_page_is_self_contained_and_only_its_own_script_may_run(html):
     assert images and all(src.startswith("data:image/png;base64,") for src in images)
 
 
+@pytest.mark.slow  # fits and renders a whole report with its figures (about 4 s)
 def test_figures_are_png_files_written_whole(run_folder):
     figures = sorted(p.name for p in path_of(run_folder, "figures").iterdir())
     assert {"intervals.png", "shrinkage.png", "ranks.png", "funnel.png", "population.png"} <= set(

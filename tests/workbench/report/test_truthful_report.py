@@ -71,6 +71,7 @@ def test_flag_colour_follows_better_and_worse_not_the_side(lower_is_better):
     assert "flagged above target (worse)" in html
 
 
+@pytest.mark.slow  # fits and renders a whole report with its figures (about 3 s)
 def test_a_group_with_no_trials_reads_no_data_not_a_rank(lower_is_better):
     out, html = lower_is_better
     ranks = pd.read_csv(path_of(out, "ranks"))
