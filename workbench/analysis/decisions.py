@@ -60,8 +60,16 @@ def _settle(a, b, m, target, *, start=None, span=None, bounds=SETTLE_BOUNDS,
     """settle_chance with its two thresholds (first unsettled y, first settled-high y).
 
     ``start`` (two arrays) and ``span`` narrow the bisection: both thresholds are known to
-    lie in [start, start + span] (see :func:`_last_short`); by default [0, m + 1].
+    lie in [start, start + span]; by default [0, m + 1].
     """
+    unsettled, first, y_high = _settle_parts(a, b, m, target, start=start, span=span,
+                                             bounds=bounds, window_cells=window_cells)
+    return np.clip(1.0 - unsettled, 0.0, 1.0), first, y_high
+
+
+def _settle_parts(a, b, m, target, *, start=None, span=None, bounds=SETTLE_BOUNDS,
+                  window_cells=CHUNK_CELLS):
+    """:func:`_settle` before its last step: the unsettled window's mass (not one minus it)."""
     a = np.asarray(a, dtype=float)
     b = np.asarray(b, dtype=float)
     m = np.broadcast_to(np.asarray(m, dtype=np.int64), a.shape).copy()
@@ -87,7 +95,7 @@ def _settle(a, b, m, target, *, start=None, span=None, bounds=SETTLE_BOUNDS,
         for s in range(0, live.size, step):
             idx = live[s : s + step]
             unsettled[idx] = _window_mass(a[idx], b[idx], m[idx], first[idx], length[idx])
-    return np.clip(1.0 - unsettled, 0.0, 1.0), first, y_high
+    return unsettled, first, y_high
 
 
 def pmf_ceiling(a, b, m) -> np.ndarray:
@@ -108,43 +116,130 @@ def pmf_ceiling(a, b, m) -> np.ndarray:
     return out * (1 + 1e-9) + 1e-15
 
 
+#: a walked value this close to a cut-off is recomputed directly before it decides anything
+#: (the recurrences drift by about 1e-13 between direct recomputations)
+WALK_GUARD = 1e-9
+#: steps between direct recomputations of every walking group's state
+WALK_RESYNC = 1024
+#: walked probabilities below this are recomputed directly (no walk through underflow)
+WALK_TINY = 1e-280
+
+
+def _walk_state(a, b, m, first, high, target):
+    """A walking group's state at m, computed directly from its two thresholds.
+
+    Row 0 follows ``first``, row 1 ``high``; for each, y is the threshold minus one and
+    q = P(Y_m = y) (Beta-binomial(m, a, b)); J = I_target(a + y, b + m - 1 - y), the test of
+    whether the threshold moves down at m - 1, and g = target^(a+y) (1 - target)^(b+m-1-y)
+    / B(a + y, b + m - 1 - y), the term of J's recurrences. ``dead`` rows need no test:
+    first at 0 stays there, high at its ceiling m + 1 falls with m. ``bad`` rows cannot be
+    walked from here (thresholds outside their range).
+    """
+    m = np.asarray(m, dtype=np.int64)
+    y = np.stack([first - 1, high - 1])
+    dead = np.stack([first == 0, high == m + 1])
+    al = a + y
+    be = b + (m - 1) - y
+    bad = (~dead & ~((be > 0) & (al > 0))) | (y < -1) | (y > m)
+    live = ~dead & ~bad
+    q, J, g = np.zeros(y.shape), np.zeros(y.shape), np.zeros(y.shape)
+    mm = np.broadcast_to(m, y.shape)
+    aa, bb = np.broadcast_to(a, y.shape), np.broadcast_to(b, y.shape)
+    q[live] = np.exp(betabinom_logpmf(y[live], mm[live], aa[live], bb[live]))
+    J[live] = special.betainc(al[live], be[live], target)
+    g[live] = np.exp(al[live] * np.log(target) + be[live] * np.log1p(-target)
+                     - special.betaln(al[live], be[live]))
+    return y, q, J, g, dead, bad.any(axis=0)
+
+
+def _walk_step(a, b, m, y, q, J, g, dead, W, target, cuts):
+    """One step down, m to m - 1, by recurrences alone: the new state and its trust.
+
+    With n = a + b + m - 1 and m' = m - 1: P(Y_m' = y) = P(Y_m = y) (m - y) n / (m (b + m' - y));
+    one trial fewer adds P(Y_m' = y) (a + y) / n below y + 1 (the Polya urn: a success at the
+    m-th trial), so the window [first, high) gains that at high - 1 and loses it at first - 1;
+    a threshold moves down when J passes its cut, taking P(Y_m' = y) into the window (first)
+    or out (high), and q steps to y - 1 by the ratio of neighbouring terms. J steps with
+    I(a, b - 1) = I(a, b) - g(a, b) / ((1 - t)(a + b - 1)) (threshold stays) or
+    I(a - 1, b) = I(a, b) + g(a, b) / (t (a + b - 1)) (it moves), g with them.
+    ``trust`` is False where a decision fell within WALK_GUARD of its cut or a value left
+    the range the recurrences are accurate in.
+    """
+    m1 = m - 1
+    n = a + b + m1
+    yf = y.astype(float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = np.where(dead, 0.0, q * ((m - yf) / m) * (n / (b + m1 - yf)))
+        W = W + (q[1] * (a + yf[1]) - q[0] * (a + yf[0])) / n
+        move = np.where(dead, dead & (np.arange(2) == 1)[:, None], J < cuts)
+        W = W + np.where(move[0], q[0], 0.0) - np.where(move[1], q[1], 0.0)
+        near = ~dead & (np.abs(J - cuts) < WALK_GUARD)
+        step_q = yf * (b + m1 - yf) / ((m1 - yf + 1) * (a + yf - 1))
+        q = np.where(move, q * step_q, q)
+        d = n - 1
+        J = np.where(move, J + g / (target * d), J - g / ((1 - target) * d))
+        g = np.where(move, g * ((a + yf - 1) / (target * d)),
+                     g * ((b + m1 - yf - 1) / ((1 - target) * d)))
+    y = y - move
+    dead = np.stack([y[0] < 0, y[1] == m1])
+    q = np.where(dead, 0.0, q)
+    live = ~dead
+    ok = np.isfinite(J) & np.isfinite(g) & np.isfinite(q) & (q > WALK_TINY) & (g > WALK_TINY)
+    trust = ~(near | (live & ~ok)).any(axis=0) & np.isfinite(W)
+    return y, q, J, g, dead, W, trust
+
+
+def _walk_direct(a, b, m, first, high, target):
+    """The state at m from the thresholds one trial later (each the same or one more)."""
+    un, f, h = _settle_parts(a, b, m, target, start=(np.maximum(first - 1, 0),
+                                                     np.maximum(high - 1, 0)), span=1)
+    return (np.clip(1.0 - un, 0.0, 1.0), un, f, h), _walk_state(a, b, m, f, h, target)
+
+
 def _last_short(a, b, horizon, target, chance) -> np.ndarray:
     """Per group, the largest m in 1..horizon with settle_chance < ``chance`` (0 if none).
 
-    The same answer as evaluating every m, with fewer evaluations. From m to m + 1 each
-    threshold of :func:`settle_chance` stays or moves up by one (one more trial can only
-    lower P(above) for the same successes, and one more success only raises it), and the
-    settled mass on each side changes by at most one probability of Beta-binomial(m, a, b):
-    so |chance(m + j) - chance(m)| <= 2 j p_max(m), p_max (:func:`pmf_ceiling`) falling
-    with m (each term of m + 1 averages two of m). A chance short of ``chance`` by d thus
-    stays short for the next ceil(d / (2 p_max)) - 1 trials, and one above it by d stays
-    above for floor(d / (2 p_max)): those m are known without evaluating them, and the
-    thresholds' bisection is narrowed to the skipped span.
+    Walks down from each group's horizon one m at a time and stops at the first short m,
+    so every m above the answer is evaluated. The chance at the horizon is computed as
+    :func:`settle_chance` does; each step down then costs a few arithmetic operations
+    (:func:`_walk_step`): the thresholds move down by at most one per trial (one trial fewer
+    can only raise P(above) for the same successes, one success fewer only lowers it), and
+    the window's mass, its edge probabilities and the thresholds' tests follow exact
+    recurrences. A step whose decision falls within WALK_GUARD of a cut-off, or whose values
+    left the recurrences' safe range, is recomputed directly as :func:`settle_chance` does
+    (bisection on y, summed mass); so is every group every WALK_RESYNC steps.
     """
-    g = len(a)
-    m = np.ones(g, dtype=np.int64)
-    last = np.zeros(g, dtype=np.int64)
-    first = np.zeros(g, dtype=np.int64)
-    high = np.zeros(g, dtype=np.int64)
-    span = np.full(g, -1, dtype=np.int64)  # -1: no state yet, bisect the whole range
-    act = np.arange(g)
+    a, b = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
+    horizon = np.asarray(horizon, dtype=np.int64)
+    last = np.zeros(len(a), dtype=np.int64)
+    cuts = np.array([[1 - SETTLE_BOUNDS[0]], [1 - SETTLE_BOUNDS[1]]])
+    un, f, h = _settle_parts(a, b, horizon, target)
+    c = np.clip(1.0 - un, 0.0, 1.0)
+    last[c < chance] = horizon[c < chance]
+    act = np.flatnonzero((c >= chance) & (horizon > 1))
+    m, W = horizon[act], un[act]
+    y, q, J, g, dead, bad = _walk_state(a[act], b[act], m, f[act], h[act], target)
+    aa, bb = a[act], b[act]
+    steps = 0
     while act.size:
-        mm = m[act]
-        known = span[act] >= 0
-        c, f, h = _settle(a[act], b[act], mm, target, start=(first[act], high[act]),
-                          span=np.where(known, span[act], mm + 1))
-        first[act], high[act] = f, h
-        p2 = 2.0 * pmf_ceiling(a[act], b[act], mm)
+        steps += 1
+        before = y
+        y, q, J, g, dead, W, trust = _walk_step(aa, bb, m, y, q, J, g, dead, W, target, cuts)
+        m = m - 1
+        c = 1.0 - W
+        trust &= ~bad & (np.abs(c - chance) >= WALK_GUARD)
+        redo = np.flatnonzero(~trust) if steps % WALK_RESYNC else np.arange(act.size)
+        if redo.size:
+            (c_r, W[redo], _, _), st = _walk_direct(aa[redo], bb[redo], m[redo], before[0, redo] + 1,
+                                                  before[1, redo] + 1, target)
+            c[redo] = c_r
+            y[:, redo], q[:, redo], J[:, redo], g[:, redo], dead[:, redo], bad[redo] = st
         short = c < chance
-        room = horizon[act] - mm + 1
-        with np.errstate(over="ignore", invalid="ignore"):
-            j_short = np.clip(np.ceil((chance - c) / p2 - 1e-12), 1, room)
-            j_ok = np.clip(np.floor((c - chance) / p2) + 1, 1, room)
-        step = np.where(short, j_short, j_ok).astype(np.int64)
-        last[act[short]] = (mm + step - 1)[short]
-        m[act] = mm + step
-        span[act] = step
-        act = act[m[act] <= horizon[act]]
+        last[act[short]] = m[short]
+        keep = ~short & (m > 1)
+        if not keep.all():
+            act, aa, bb, m, W, bad = act[keep], aa[keep], bb[keep], m[keep], W[keep], bad[keep]
+            y, q, J, g, dead = y[:, keep], q[:, keep], J[:, keep], g[:, keep], dead[:, keep]
     return last
 
 
