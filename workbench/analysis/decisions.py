@@ -9,6 +9,7 @@ import pandas as pd
 from scipy import special
 
 from ..models._stats import beta_from_moments, betabinom_logpmf
+from . import _walk
 
 #: P(above target) outside these bounds reads "settled"
 SETTLE_BOUNDS = (0.05, 0.95)
@@ -98,24 +99,6 @@ def _settle_parts(a, b, m, target, *, start=None, span=None, bounds=SETTLE_BOUND
     return unsettled, first, y_high
 
 
-def pmf_ceiling(a, b, m) -> np.ndarray:
-    """The largest Beta-binomial(m, a, b) probability, slightly rounded up.
-
-    p(y + 1) >= p(y) exactly when m (a - 1) - (b - 1) >= y (a + b - 2) (the ratio of
-    neighbouring terms, multiplied out), so the mass function rises to one mode and falls
-    (a + b > 2), or is largest at an end (a + b <= 2): the mode's two neighbours of
-    (m (a - 1) - (b - 1)) / (a + b - 2) and both ends cover every case.
-    """
-    m = np.asarray(m, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        y = (m * (a - 1.0) - (b - 1.0)) / (a + b - 2.0)
-    y = np.where(np.isfinite(y), y, 0.0)
-    out = np.zeros_like(m)
-    for c in (np.zeros_like(m), m, np.clip(np.floor(y), 0, m), np.clip(np.ceil(y), 0, m)):
-        out = np.maximum(out, np.exp(betabinom_logpmf(c, m, a, b)))
-    return out * (1 + 1e-9) + 1e-15
-
-
 #: a walked value this close to a cut-off is recomputed directly before it decides anything
 #: (the recurrences drift by about 1e-13 between direct recomputations)
 WALK_GUARD = 1e-9
@@ -131,9 +114,10 @@ def _walk_state(a, b, m, first, high, target):
     Row 0 follows ``first``, row 1 ``high``; for each, y is the threshold minus one and
     q = P(Y_m = y) (Beta-binomial(m, a, b)); J = I_target(a + y, b + m - 1 - y), the test of
     whether the threshold moves down at m - 1, and g = target^(a+y) (1 - target)^(b+m-1-y)
-    / B(a + y, b + m - 1 - y), the term of J's recurrences. ``dead`` rows need no test:
-    first at 0 stays there, high at its ceiling m + 1 falls with m. ``bad`` rows cannot be
-    walked from here (thresholds outside their range).
+    / B(a + y, b + m - 1 - y), the term of J's recurrences. Rows that need no test are
+    "dead" (their q, J and g are 0): first at 0 stays there, high at its ceiling m + 1 falls
+    with m. ``bad`` marks groups that cannot be walked from here.
+    Returns (y, q, J, g) as one (4, 2, groups) float array, and ``bad``.
     """
     m = np.asarray(m, dtype=np.int64)
     y = np.stack([first - 1, high - 1])
@@ -142,104 +126,76 @@ def _walk_state(a, b, m, first, high, target):
     be = b + (m - 1) - y
     bad = (~dead & ~((be > 0) & (al > 0))) | (y < -1) | (y > m)
     live = ~dead & ~bad
-    q, J, g = np.zeros(y.shape), np.zeros(y.shape), np.zeros(y.shape)
+    s = np.zeros((4,) + y.shape)
+    s[0] = y
     mm = np.broadcast_to(m, y.shape)
     aa, bb = np.broadcast_to(a, y.shape), np.broadcast_to(b, y.shape)
-    q[live] = np.exp(betabinom_logpmf(y[live], mm[live], aa[live], bb[live]))
-    J[live] = special.betainc(al[live], be[live], target)
-    g[live] = np.exp(al[live] * np.log(target) + be[live] * np.log1p(-target)
-                     - special.betaln(al[live], be[live]))
-    return y, q, J, g, dead, bad.any(axis=0)
-
-
-def _walk_step(a, b, m, y, q, J, g, dead, W, target, cuts):
-    """One step down, m to m - 1, by recurrences alone: the new state and its trust.
-
-    With n = a + b + m - 1 and m' = m - 1: P(Y_m' = y) = P(Y_m = y) (m - y) n / (m (b + m' - y));
-    one trial fewer adds P(Y_m' = y) (a + y) / n below y + 1 (the Polya urn: a success at the
-    m-th trial), so the window [first, high) gains that at high - 1 and loses it at first - 1;
-    a threshold moves down when J passes its cut, taking P(Y_m' = y) into the window (first)
-    or out (high), and q steps to y - 1 by the ratio of neighbouring terms. J steps with
-    I(a, b - 1) = I(a, b) - g(a, b) / ((1 - t)(a + b - 1)) (threshold stays) or
-    I(a - 1, b) = I(a, b) + g(a, b) / (t (a + b - 1)) (it moves), g with them.
-    ``trust`` is False where a decision fell within WALK_GUARD of its cut or a value left
-    the range the recurrences are accurate in.
-    """
-    m1 = m - 1
-    n = a + b + m1
-    yf = y.astype(float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        q = np.where(dead, 0.0, q * ((m - yf) / m) * (n / (b + m1 - yf)))
-        W = W + (q[1] * (a + yf[1]) - q[0] * (a + yf[0])) / n
-        move = np.where(dead, dead & (np.arange(2) == 1)[:, None], J < cuts)
-        W = W + np.where(move[0], q[0], 0.0) - np.where(move[1], q[1], 0.0)
-        near = ~dead & (np.abs(J - cuts) < WALK_GUARD)
-        step_q = yf * (b + m1 - yf) / ((m1 - yf + 1) * (a + yf - 1))
-        q = np.where(move, q * step_q, q)
-        d = n - 1
-        J = np.where(move, J + g / (target * d), J - g / ((1 - target) * d))
-        g = np.where(move, g * ((a + yf - 1) / (target * d)),
-                     g * ((b + m1 - yf - 1) / ((1 - target) * d)))
-    y = y - move
-    dead = np.stack([y[0] < 0, y[1] == m1])
-    q = np.where(dead, 0.0, q)
-    live = ~dead
-    ok = np.isfinite(J) & np.isfinite(g) & np.isfinite(q) & (q > WALK_TINY) & (g > WALK_TINY)
-    trust = ~(near | (live & ~ok)).any(axis=0) & np.isfinite(W)
-    return y, q, J, g, dead, W, trust
+    s[1][live] = np.exp(betabinom_logpmf(y[live], mm[live], aa[live], bb[live]))
+    s[2][live] = special.betainc(al[live], be[live], target)
+    s[3][live] = np.exp(al[live] * np.log(target) + be[live] * np.log1p(-target)
+                        - special.betaln(al[live], be[live]))
+    return s, bad.any(axis=0)
 
 
 def _walk_direct(a, b, m, first, high, target):
-    """The state at m from the thresholds one trial later (each the same or one more)."""
+    """The step to m taken directly, from the thresholds at m + 1 (each the same or one
+    less at m): (chance, window mass, state, bad) as :func:`settle_chance` computes them."""
+    first, high = first.astype(np.int64), high.astype(np.int64)
     un, f, h = _settle_parts(a, b, m, target, start=(np.maximum(first - 1, 0),
                                                      np.maximum(high - 1, 0)), span=1)
-    return (np.clip(1.0 - un, 0.0, 1.0), un, f, h), _walk_state(a, b, m, f, h, target)
+    return np.clip(1.0 - un, 0.0, 1.0), un, *_walk_state(a, b, m, f, h, target)
 
 
 def _last_short(a, b, horizon, target, chance) -> np.ndarray:
     """Per group, the largest m in 1..horizon with settle_chance < ``chance`` (0 if none).
 
-    Walks down from each group's horizon one m at a time and stops at the first short m,
-    so every m above the answer is evaluated. The chance at the horizon is computed as
+    Walks down from each group's horizon one m at a time and stops at the first short m, so
+    every m above the answer is evaluated. The chance at the horizon is computed as
     :func:`settle_chance` does; each step down then costs a few arithmetic operations
-    (:func:`_walk_step`): the thresholds move down by at most one per trial (one trial fewer
-    can only raise P(above) for the same successes, one success fewer only lowers it), and
-    the window's mass, its edge probabilities and the thresholds' tests follow exact
-    recurrences. A step whose decision falls within WALK_GUARD of a cut-off, or whose values
-    left the recurrences' safe range, is recomputed directly as :func:`settle_chance` does
-    (bisection on y, summed mass); so is every group every WALK_RESYNC steps.
+    (:func:`._walk.walk_down`, compiled). With n = a + b + m - 1 and m' = m - 1:
+    P(Y_m' = y) = P(Y_m = y) (m - y) n / (m (b + m' - y)); one trial fewer adds
+    P(Y_m' = y) (a + y) / n to P(Y <= y) (the Polya urn: the m-th trial a success), so the
+    unsettled window [first, high) gains it at high - 1 and loses it at first - 1. Each
+    threshold stays or moves down by one (one trial fewer only raises P(above) for the same
+    successes, one success fewer only lowers it); it moves when J passes its cut, taking
+    P(Y_m' = y) into the window (first) or out of it (high), q stepping to y - 1 by the ratio
+    of neighbouring terms; J follows I(a, b - 1) = I(a, b) - g / ((1 - t)(a + b - 1)) (stays)
+    or I(a - 1, b) = I(a, b) + g / (t (a + b - 1)) (moves), g with it. A step whose decision
+    falls within WALK_GUARD of a cut-off, or whose values leave the recurrences' safe range,
+    is taken directly as :func:`settle_chance` computes (bisection on y, summed mass), and
+    so is every WALK_RESYNC-th step of a group.
     """
     a, b = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
     horizon = np.asarray(horizon, dtype=np.int64)
     last = np.zeros(len(a), dtype=np.int64)
-    cuts = np.array([[1 - SETTLE_BOUNDS[0]], [1 - SETTLE_BOUNDS[1]]])
     un, f, h = _settle_parts(a, b, horizon, target)
     c = np.clip(1.0 - un, 0.0, 1.0)
     last[c < chance] = horizon[c < chance]
     act = np.flatnonzero((c >= chance) & (horizon > 1))
-    m, W = horizon[act], un[act]
-    y, q, J, g, dead, bad = _walk_state(a[act], b[act], m, f[act], h[act], target)
-    aa, bb = a[act], b[act]
-    steps = 0
+    m, W, aa, bb = horizon[act].astype(float), un[act], a[act], b[act]
+    s, bad = _walk_state(aa, bb, horizon[act], f[act], h[act], target)
+    cuts = (1 - SETTLE_BOUNDS[0], 1 - SETTLE_BOUNDS[1])
     while act.size:
-        steps += 1
-        before = y
-        y, q, J, g, dead, W, trust = _walk_step(aa, bb, m, y, q, J, g, dead, W, target, cuts)
-        m = m - 1
-        c = 1.0 - W
-        trust &= ~bad & (np.abs(c - chance) >= WALK_GUARD)
-        redo = np.flatnonzero(~trust) if steps % WALK_RESYNC else np.arange(act.size)
+        event = np.full(act.size, _walk.DIRECT)
+        go = np.flatnonzero(~bad)
+        if go.size:  # the compiled walk works on contiguous copies
+            sub = (m[go], np.ascontiguousarray(s[:, :, go]), W[go])
+            event[go] = _walk.walk_down(aa[go], bb[go], *sub, target, chance, cuts,
+                                        WALK_GUARD, WALK_TINY, WALK_RESYNC)
+            m[go], s[:, :, go], W[go] = sub
+        redo = np.flatnonzero(event == _walk.DIRECT)
         if redo.size:
-            (c_r, W[redo], _, _), st = _walk_direct(aa[redo], bb[redo], m[redo], before[0, redo] + 1,
-                                                  before[1, redo] + 1, target)
-            c[redo] = c_r
-            y[:, redo], q[:, redo], J[:, redo], g[:, redo], dead[:, redo], bad[redo] = st
-        short = c < chance
+            m[redo] -= 1
+            c, W[redo], s[:, :, redo], bad[redo] = _walk_direct(
+                aa[redo], bb[redo], m[redo].astype(np.int64), s[0, 0, redo] + 1,
+                s[0, 1, redo] + 1, target)
+            event[redo[c < chance]] = _walk.SHORT
+            event[redo[(c >= chance) & (m[redo] <= 1)]] = _walk.BOTTOM
+        short = event == _walk.SHORT
         last[act[short]] = m[short]
-        keep = ~short & (m > 1)
-        if not keep.all():
-            act, aa, bb, m, W, bad = act[keep], aa[keep], bb[keep], m[keep], W[keep], bad[keep]
-            y, q, J, g, dead = y[:, keep], q[:, keep], J[:, keep], g[:, keep], dead[:, keep]
+        keep = event == _walk.DIRECT
+        act, aa, bb, m, W, bad = act[keep], aa[keep], bb[keep], m[keep], W[keep], bad[keep]
+        s = s[:, :, keep]
     return last
 
 
@@ -310,7 +266,7 @@ def _needed(a, b, p_above, target, chance, max_trials):
         pending = pending[short & (horizon[pending] < max_trials)]
         horizon[pending] = np.minimum(int(max_trials), 2 * horizon[pending])
     # 3. the smallest m from which the chance stays at or above ``chance`` through H: one
-    #    past the last m in 1..H short of it (every m accounted for, see _last_short)
+    #    past the last m in 1..H short of it (every m above it evaluated, see _last_short)
     idx = np.flatnonzero(found)
     if idx.size:
         needed[idx] = _last_short(a[idx], b[idx], horizon[idx], target, chance) + 1
@@ -336,8 +292,8 @@ def trials_needed_table(
     chance is then accounted for at *every* m from 1 to a horizon H (twice that first m plus
     20, doubled while the chance at H still falls short, at most ``max_trials``), and the m
     reported is the smallest from which the chance stays at or above ``chance`` at every m
-    through H. ``prob_settled`` is the chance at that m. Every m is accounted for without
-    computing each (:func:`_last_short` bounds how far the chance can move per trial), and
+    through H. ``prob_settled`` is the chance at that m. The m from H down to the answer are
+    each evaluated by exact recurrences, a few operations a step (:func:`_last_short`), and
     groups sharing one posterior are searched once.
     """
     names = inp.names.astype(str)

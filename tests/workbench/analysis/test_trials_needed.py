@@ -78,8 +78,8 @@ def test_the_groups_zig_zag(table):
 
 
 @pytest.mark.slow
-def test_skipping_scan_finds_the_last_short_m_of_the_every_m_brute_force():
-    # the bounded-skip scan (decisions._last_short) against the brute force above, on
+def test_walk_down_finds_the_last_short_m_of_the_every_m_brute_force():
+    # the walk down from the horizon (decisions._last_short) against the brute force above, on
     # posteriors of several sizes around the target (scipy.stats enumerates every m and y)
     from workbench.analysis.decisions import _last_short
 
@@ -92,14 +92,3 @@ def test_skipping_scan_finds_the_last_short_m_of_the_every_m_brute_force():
     for i in range(12):
         below = np.flatnonzero(brute_chances(a[i], b[i], 400, TARGET) < CHANCE)
         assert got[i] == (int(below[-1]) + 1 if below.size else 0)
-
-
-@pytest.mark.parametrize("a,b", [(3.0, 6.0), (0.5, 0.7), (1.0, 1.0), (40.0, 200.0), (0.6, 9.0)])
-def test_pmf_ceiling_bounds_the_largest_betabinomial_probability(a, b):
-    # scipy.stats.betabinom over every y: the ceiling is the maximum (rounded up by 1e-9)
-    from workbench.analysis.decisions import pmf_ceiling
-
-    for m in (1, 2, 7, 50, 333):
-        top = stats.betabinom.pmf(np.arange(m + 1), m, a, b).max()
-        got = float(pmf_ceiling(np.array([a]), np.array([b]), np.array([m]))[0])
-        assert top <= got <= top * (1 + 1e-8) + 1e-14
