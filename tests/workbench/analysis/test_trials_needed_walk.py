@@ -62,7 +62,8 @@ def random_cases(n, seed):
     return cases
 
 
-@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("seed", [1, pytest.param(2, marks=pytest.mark.slow),
+                                  pytest.param(3, marks=pytest.mark.slow)])
 def test_last_short_equals_every_m_scipy_evaluation(seed):
     # 3 x 100 random cases; each group's answer is checked on its own against scipy.stats
     cases = random_cases(100, seed)
@@ -140,6 +141,7 @@ class BetaGroups:
         return stats.beta.sf(value, self.a, self.b)
 
 
+@pytest.mark.slow  # the whole table by scipy at every m (about 6 s)
 def test_trials_needed_table_equals_its_definition_by_scipy():
     # the whole table on groups near a target: each m is, by scipy.stats at every m, the
     # smallest from which the chance stays at or above 0.8 through the horizon (twice the
