@@ -18,7 +18,7 @@ import xarray as xr
 from scipy import special, stats
 
 from ..models import attr, counts_of, log_likelihood_arrays, theta_draws
-from ..models._grid import HyperPrior, fit_grid
+from ..models._grid import HyperPrior, distinct_pairs, fit_grid
 from ..models._posterior import logit_means
 from ..models._stats import betabinom_cdf, betabinom_logpmf
 from .settings import NOT_COMPUTED, CheckSettings
@@ -266,6 +266,20 @@ def _unavailable(idata, samples: int, seen: np.ndarray) -> str | None:
     return None
 
 
+#: Models whose y_group, given the hyperparameter draws, depends on a group's successes and
+#: trials alone (no group-specific parent or covariates).
+EXCHANGEABLE_MODELS = ("beta-binomial", "no-pooling", "complete-pooling")
+
+
+def _pair_keys(idata) -> np.ndarray | None:
+    """One key per group for its (successes, trials) pair where equal pairs give equal
+    y_group draws (EXCHANGEABLE_MODELS); None where they need not."""
+    if attr(idata, "model") not in EXCHANGEABLE_MODELS:
+        return None
+    data = counts_of(idata)
+    return distinct_pairs(data.successes, data.trials)[1]
+
+
 def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
     """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups."""
     reff = _relative_efficiency(idata)
@@ -277,22 +291,29 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
     out["pit_possible"] = True
     out["good_k"] = float("nan")
     pit_draws = thinned_draws(samples, settings.draws)
+    pair = _pair_keys(idata)
     for cols in column_chunks(np.arange(len(seen)), samples, settings.chunk_cells):
         groups = seen[cols]
-        ll = _group_loglik(idata, groups)  # (groups, samples)
+        # groups whose y_group depends on their counts alone share it: PSIS once per pair
+        if pair is None:
+            reps, inv = groups, np.arange(len(groups))
+        else:
+            _, first, inv = np.unique(pair[groups], return_index=True, return_inverse=True)
+            reps, inv = groups[first], inv.ravel()
+        ll = _group_loglik(idata, reps)  # (distinct groups, samples)
         frame = az.InferenceData(
             log_likelihood=xr.Dataset(
-                {"y_group": (("chain", "draw", "group"), ll.T.reshape(1, samples, len(groups)))}
+                {"y_group": (("chain", "draw", "group"), ll.T.reshape(1, samples, len(reps)))}
             )
         )
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # high k is reported in the table, not as a warning
             loo = az.loo(frame, pointwise=True, reff=reff, var_name="y_group")
         out["good_k"] = float(loo.good_k)  # min(1 - 1/log10(S), 0.7) (Vehtari et al. 2024)
-        out["elpd"][cols] = loo.loo_i.values
-        out["k"][cols] = loo.pareto_k.values
-        out["lppd"][cols] = special.logsumexp(ll, axis=1) - np.log(samples)
-        out["constant"][cols] = np.ptp(ll, axis=1) == 0
+        out["elpd"][cols] = loo.loo_i.values[inv]
+        out["k"][cols] = loo.pareto_k.values[inv]
+        out["lppd"][cols] = (special.logsumexp(ll, axis=1) - np.log(samples))[inv]
+        out["constant"][cols] = (np.ptp(ll, axis=1) == 0)[inv]
         y_new = _new_group_replicates(idata, groups, pit_draws, rng)
         if y_new is None:
             out["pit_possible"] = False
@@ -301,6 +322,7 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             log_w, _ = az.psislw(-ll[:, pit_draws], reff)
+            log_w = log_w[inv]
             out["at"][cols] = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
             out["below"][cols] = np.asarray(
                 az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w)
