@@ -50,3 +50,22 @@ def test_population_summary_is_computed_once_per_grid_and_level():
     fresh = _quadrature._population_summary(grid, 0.95)
     for name, values in first.items():
         np.testing.assert_allclose(values, fresh[name], rtol=1e-12)
+
+
+@pytest.mark.parametrize("successes,trials", [
+    pytest.param([3], [10], marks=pytest.mark.slow),  # one group: kappa left to its prior (2 s)
+    ([0, 0, 0, 3, 3], [4, 4, 4, 3, 3]),            # rates piled at 0 and 1
+    ([1, 2, 3, 4, 300_000_000], [5, 6, 7, 8, 10**9]),  # one huge group among small ones
+    ([4, 9, 15, 2, 30, 11, 7, 0], [20, 40, 60, 15, 90, 50, 35, 12]),
+])
+def test_polished_quantiles_are_the_full_grids_own(successes, trials):
+    # quantiles are solved on the grid before its last refinement and polished by Newton on
+    # the full grid; they must equal the full grid's own safeguarded solution far inside the
+    # stated tolerance (0.01 posterior sd)
+    y, n = np.array(successes), np.array(trials)
+    mixture = fit_grid(y, n, HyperPrior()).mixture(y, n)
+    _, var = mixture._pair_moments()
+    for q in (0.005, 0.025, 0.5, 0.975, 0.995):
+        polished = mixture.ppf(q)
+        own = mixture._pair_ppf(q, tol=1e-13, max_iter=100)[mixture.index]
+        assert np.max(np.abs(polished - own) / np.sqrt(var[mixture.index])) < 1e-5
