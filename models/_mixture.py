@@ -107,14 +107,17 @@ class BetaMixturePosteriors:
                 self._cdf_cache = (cw / cw.sum(), ca, cb)
         return self._cdf_cache
 
-    def _chunks(self, a=None, b=None):
+    def _chunks(self, a=None, b=None, rows=None):
+        """(slice of the output, alpha, beta) by chunks of pairs: all of them, or ``rows``."""
         a = self.a if a is None else a
         b = self.b if b is None else b
+        y = self.y if rows is None else self.y[rows]
+        n = self.n if rows is None else self.n[rows]
         step = max(1, _CHUNK_CELLS // max(len(a), 1))
-        for start in range(0, len(self.y), step):
+        for start in range(0, len(y), step):
             sl = slice(start, start + step)
-            alpha = a[None, :] + self.y[sl, None]
-            beta = b[None, :] + (self.n[sl] - self.y[sl])[:, None]
+            alpha = a[None, :] + y[sl, None]
+            beta = b[None, :] + (n[sl] - y[sl])[:, None]
             yield sl, alpha, beta
 
     def _pair_mean(self) -> np.ndarray:
@@ -145,23 +148,28 @@ class BetaMixturePosteriors:
         m1, var = self._pair_moments()
         return m1[self.index], var[self.index]
 
-    def _pair_cdf(self, x: np.ndarray) -> np.ndarray:
-        out = np.empty(len(self.y))
+    def _pair_cdf(self, x: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+        """The CDF at ``x`` of every pair, or of the pairs ``rows`` (``x`` then theirs)."""
+        out = np.empty(len(x))
         weights, a, b = self._cdf
-        for sl, alpha, beta in self._chunks(a, b):
+        for sl, alpha, beta in self._chunks(a, b, rows):
             out[sl] = beta_cdf(alpha, beta, np.broadcast_to(x[sl, None], alpha.shape)) @ weights
         return out
 
-    def _pair_pdf(self, x: np.ndarray) -> np.ndarray:
-        out = np.empty(len(self.y))
+    def _pair_pdf(self, x: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+        """The density at ``x`` of every pair, or of the pairs ``rows``."""
+        out = np.empty(len(x))
         weights, a, b = self._cdf
         # log B(alpha, beta) does not depend on x: kept between calls (Newton steps) while
-        # it is small
+        # it is small (then it is one chunk)
         if self._log_beta is None and len(self.y) * len(a) <= _CHUNK_CELLS:
-            self._log_beta = [special.betaln(alpha, beta) for _, alpha, beta in self._chunks(a, b)]
-        for k, (sl, alpha, beta) in enumerate(self._chunks(a, b)):
+            self._log_beta = special.betaln(*next(self._chunks(a, b))[1:])
+        for sl, alpha, beta in self._chunks(a, b, rows):
             xs = x[sl, None]
-            log_beta = special.betaln(alpha, beta) if self._log_beta is None else self._log_beta[k]
+            if self._log_beta is None:
+                log_beta = special.betaln(alpha, beta)
+            else:
+                log_beta = self._log_beta if rows is None else self._log_beta[rows]
             with np.errstate(divide="ignore", invalid="ignore"):
                 logpdf = special.xlogy(alpha - 1, xs) + special.xlog1py(beta - 1, -xs) - log_beta
             out[sl] = np.exp(logpdf) @ weights
@@ -201,18 +209,18 @@ class BetaMixturePosteriors:
         x = np.clip(stats.beta.ppf(q, m1 * common, (1 - m1) * common), 1e-300, 1 - 1e-16)
         lo = np.zeros_like(x)
         hi = np.ones_like(x)
-        active = np.ones(len(x), dtype=bool)
+        rows = np.arange(len(x))  # the pairs still moving: only they are evaluated
         for _ in range(max_iter):
-            f = self._pair_cdf(x) - q
-            lo = np.where(active & (f < 0), x, lo)
-            hi = np.where(active & (f >= 0), x, hi)
-            step = f / np.maximum(self._pair_pdf(x), 1e-300)
-            new = x - step
-            outside = (new < lo) | (new > hi) | ~np.isfinite(new)
-            new = np.where(outside, 0.5 * (lo + hi), new)
-            new = np.where(active, new, x)
-            active &= (np.abs(new - x) >= tol) & (hi - lo >= tol) & (np.abs(f) > 1e-14)
-            x = new
-            if not active.any():
+            xr, lo_r, hi_r = x[rows], lo[rows], hi[rows]
+            f = self._pair_cdf(xr, rows) - q
+            lo_r = np.where(f < 0, xr, lo_r)
+            hi_r = np.where(f >= 0, xr, hi_r)
+            new = xr - f / np.maximum(self._pair_pdf(xr, rows), 1e-300)
+            outside = (new < lo_r) | (new > hi_r) | ~np.isfinite(new)
+            new = np.where(outside, 0.5 * (lo_r + hi_r), new)
+            x[rows], lo[rows], hi[rows] = new, lo_r, hi_r
+            moving = (np.abs(new - xr) >= tol) & (hi_r - lo_r >= tol) & (np.abs(f) > 1e-14)
+            rows = rows[moving]
+            if not len(rows):
                 break
         return x
