@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import numpy as np
+from scipy import stats
 from workbench.models import GroupCounts
 
 
@@ -22,3 +23,18 @@ def recorded_exit_code(folder) -> int:
     """The exit code a command on ``folder`` must give by the README's rule: 0 when its
     run.json records the run as final, 3 when not (read from the file, not from the code)."""
     return 0 if json.loads((Path(folder) / "run.json").read_text())["final"] else 3
+
+
+class BetaGroups:
+    """Groups whose posteriors are Beta(a, b): what trials_needed_table reads."""
+
+    def __init__(self, a, b):
+        self.a, self.b = np.asarray(a, float), np.asarray(b, float)
+        self.names = np.array([f"g{i}" for i in range(len(self.a))])
+
+    def moments(self):
+        s = self.a + self.b
+        return self.a / s, self.a * self.b / (s * s * (s + 1))
+
+    def prob_above(self, value):
+        return stats.beta.sf(value, self.a, self.b)

@@ -6,24 +6,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from helpers import BetaGroups
 from scipy import stats
 
 from workbench.analysis.decisions import trials_needed_table
-
-
-class BetaGroups:
-    """Groups whose posteriors are Beta(a, b): what trials_needed_table reads."""
-
-    def __init__(self, a, b):
-        self.a, self.b = np.asarray(a, float), np.asarray(b, float)
-        self.names = np.array([f"g{i}" for i in range(len(self.a))])
-
-    def moments(self):
-        s = self.a + self.b
-        return self.a / s, self.a * self.b / (s * s * (s + 1))
-
-    def prob_above(self, value):
-        return stats.beta.sf(value, self.a, self.b)
 
 
 def brute_chances(a, b, most, target, bounds=(0.05, 0.95)):

@@ -10,6 +10,7 @@ import math
 
 import numpy as np
 import pytest
+from helpers import BetaGroups
 from scipy import stats
 
 from workbench.analysis import _walk, decisions
@@ -124,21 +125,6 @@ def test_walked_state_matches_state_computed_afresh(a, b, target):
     want = math.fsum(stats.betabinom.pmf(y, mm, a, b)[inside])
     assert W[0] == pytest.approx(want, abs=1e-10)
     assert un2[0] == pytest.approx(want, abs=1e-10)
-
-
-class BetaGroups:
-    """Groups whose posteriors are Beta(a, b): what trials_needed_table reads."""
-
-    def __init__(self, a, b):
-        self.a, self.b = np.asarray(a, float), np.asarray(b, float)
-        self.names = np.array([f"g{i}" for i in range(len(self.a))])
-
-    def moments(self):
-        s = self.a + self.b
-        return self.a / s, self.a * self.b / (s * s * (s + 1))
-
-    def prob_above(self, value):
-        return stats.beta.sf(value, self.a, self.b)
 
 
 @pytest.mark.slow  # the whole table by scipy at every m (about 6 s)
