@@ -128,10 +128,9 @@ def _weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs) -> np.nd
     out = np.empty(len(probs))
     for i, p in enumerate(probs):
         at = min(int(np.searchsorted(below, p * total, side="right")) - 1, QUANTILE_BINS - 1)
-        k = int(np.searchsorted(filled, at))  # filled[k] >= at
-        first = filled[max(k - 1, 0)]
-        last = filled[min(k + 1, len(filled) - 1)] if k < len(filled) and filled[k] == at \
-            else filled[min(k, len(filled) - 1)]
+        # the nearest non-empty bins strictly below and strictly above the quantile's bin
+        first = filled[max(int(np.searchsorted(filled, at)) - 1, 0)]
+        last = filled[min(int(np.searchsorted(filled, at, side="right")), len(filled) - 1)]
         inside = (bins >= first) & (bins <= last)
         out[i] = _sorted_quantiles(values[inside], weights[inside], [p], below[first],
                                    total)[0]

@@ -18,7 +18,8 @@ import xarray as xr
 from scipy import special, stats
 
 from ..models import attr, counts_of, log_likelihood_arrays, theta_draws
-from ..models._grid import HyperPrior, distinct_pairs, fit_grid
+from ..models._grid import HyperPrior, fit_grid
+from ..models._gridposterior import distinct_pairs
 from ..models._posterior import logit_means
 from ..models._stats import betabinom_cdf, betabinom_logpmf
 from .settings import NOT_COMPUTED, CheckSettings
