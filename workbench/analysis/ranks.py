@@ -4,7 +4,8 @@ In every posterior draw the groups are ranked by their rate; rank 1 is the best
 (``better="higher"``: the highest rate; ``"lower"``: the lowest). A group's rank median and
 central rank interval summarise its ranks over the draws. Quantiles are those of the draws'
 empirical distribution (the smallest rank whose cumulative share reaches the probability),
-computed exactly by refining per-group histograms over a few passes.
+read exactly from the ranks held at once where they fit a memory budget, else by refining
+per-group histograms over a few passes.
 
 Ties: where several groups share a rate in a draw (complete pooling: all of them, in every
 draw), the tied block occupies positions lo..hi and each member gets the average rank
@@ -29,6 +30,9 @@ from .draws import chunks as _chunks
 
 #: largest number of histogram cells held while refining rank quantiles
 HISTOGRAM_CELLS = 16_000_000
+#: most draws x groups ranks held at once (int32, 4 bytes each) to read quantiles in one pass;
+#: larger posteriors refine histograms over several passes instead
+HELD_RANK_CELLS = 100_000_000
 
 
 def _check_better(better: str) -> str:
@@ -145,15 +149,18 @@ def rank_summary(
     level: float = 0.95,
     chunk_cells: int = CHUNK_CELLS,
     histogram_cells: int = HISTOGRAM_CELLS,
+    held_cells: int = HELD_RANK_CELLS,
 ) -> RankSummary:
     """Rank median, central rank interval and P(in best / worst k) for every group.
 
     ``theta`` is (draws, groups). Quantiles are exact inverted-CDF quantiles of each group's
-    per-draw (tie-averaged) ranks, found by refining per-group histograms of twice the rank:
-    each pass splits every group's current bracket into at most
+    per-draw (tie-averaged) ranks. Where draws x groups is at most ``held_cells`` the ranks
+    are computed once and held (4 bytes each) and the quantiles read by partial sorts;
+    otherwise they are found by refining per-group histograms of twice the rank: each pass
+    ranks every draw again and splits every group's current bracket into at most
     ``histogram_cells / groups`` bins, so memory is bounded by ``histogram_cells`` and
-    ``chunk_cells`` whatever the size of the posterior. ``k`` is ``top`` capped at the number
-    of groups.
+    ``chunk_cells`` whatever the size of the posterior. Both give the same numbers. ``k`` is
+    ``top`` capped at the number of groups.
     """
     started = time.perf_counter()
     better = _check_better(better)
@@ -161,6 +168,50 @@ def rank_summary(
     k = min(int(top), g)
     probs = np.array([(1 - level) / 2, 0.5, (1 + level) / 2])
     need = _target_counts(probs, s)
+    if s * g <= held_cells:
+        twice, best_sum, worst_sum = _held_quantiles(theta, better, k, need, chunk_cells)
+        done_passes = 1
+    else:
+        twice, best_sum, worst_sum, done_passes = _refined_quantiles(
+            theta, better, k, need, chunk_cells, histogram_cells)
+    return RankSummary(
+        rank_median=twice[1] / 2.0,
+        rank_lower=twice[0] / 2.0,
+        rank_upper=twice[2] / 2.0,
+        prob_best_k=best_sum / s,
+        prob_worst_k=worst_sum / s,
+        k=k,
+        passes=done_passes,
+        seconds=time.perf_counter() - started,
+        ranked=g,
+    )
+
+
+def _held_quantiles(theta, better, k, need, chunk_cells):
+    """Twice the rank at the three target counts, from every draw's ranks held at once."""
+    s, g = theta.shape
+    value = np.empty((s, g), dtype=np.int32)  # twice the rank minus 2: below 2 ** 31
+    best_sum = np.zeros(g)
+    worst_sum = np.zeros(g)
+    for sl in _chunks(s, g, chunk_cells):
+        lo, hi = _block_positions(theta[sl], better)
+        b, w = _share_in_top(lo, hi, k, g)
+        best_sum += b.sum(axis=0)
+        worst_sum += w.sum(axis=0)
+        value[sl] = lo + hi
+        del lo, hi, b, w
+    twice = np.empty((3, g), dtype=np.int64)
+    kth = np.unique(need - 1)
+    step = max(1, chunk_cells // s)
+    for start in range(0, g, step):
+        block = np.partition(value[:, start : start + step].T, kth, axis=1)
+        twice[:, start : start + step] = block[:, need - 1].T
+    return twice + 2, best_sum, worst_sum
+
+
+def _refined_quantiles(theta, better, k, need, chunk_cells, histogram_cells):
+    """Twice the rank at the three target counts, by refining per-group histograms."""
+    s, g = theta.shape
     n_values = 2 * g - 1  # twice the rank, minus 2, lies in 0 .. 2g - 2
     max_bins = max(2, histogram_cells // g)
     passes = max(1, math.ceil(math.log(n_values) / math.log(max_bins))) if n_values > 1 else 1
@@ -201,18 +252,7 @@ def rank_summary(
         width = sub
         if width == 1:
             break
-    twice = start + 2
-    return RankSummary(
-        rank_median=twice[1] / 2.0,
-        rank_lower=twice[0] / 2.0,
-        rank_upper=twice[2] / 2.0,
-        prob_best_k=best_sum / s,
-        prob_worst_k=worst_sum / s,
-        k=k,
-        passes=done_passes,
-        seconds=time.perf_counter() - started,
-        ranked=g,
-    )
+    return start + 2, best_sum, worst_sum, done_passes
 
 
 #: fewest groups with trials that make a ranking

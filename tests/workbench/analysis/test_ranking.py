@@ -34,22 +34,31 @@ def _inp(model, counts) -> draws.GroupDraws:
 # -- ranks -----------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("histogram_cells, chunk_cells", [(16_000_000, 2_000_000), (90, 50)])
-def test_rank_quantiles_equal_numpy_inverted_cdf(histogram_cells, chunk_cells):
-    # reference: numpy.quantile(method="inverted_cdf") on the dense per-draw ranks; the small
-    # budgets force four refinement passes and many chunks
+@pytest.mark.parametrize(
+    "histogram_cells, chunk_cells, held_cells",
+    [(16_000_000, 2_000_000, 0), (90, 50, 0), (16_000_000, 2_000_000, 10**8), (90, 50, 10**8)],
+)
+def test_rank_quantiles_equal_numpy_inverted_cdf(histogram_cells, chunk_cells, held_cells):
+    # reference: numpy.quantile(method="inverted_cdf") on the dense per-draw ranks; held_cells 0
+    # forces the histogram passes (four with the small budgets), otherwise the ranks are held;
+    # chunk_cells 50 makes many chunks of draws and of groups
     rng = np.random.default_rng(11)
     theta = rng.beta(3, 9, size=(401, 37))
     theta[:, 5] = theta[:, 6]  # a tie in every draw
     dense = ranks.draw_ranks(theta)
     got = ranks.rank_summary(
-        theta, level=0.9, histogram_cells=histogram_cells, chunk_cells=chunk_cells
+        theta, level=0.9, histogram_cells=histogram_cells, chunk_cells=chunk_cells,
+        held_cells=held_cells,
     )
     lo, med, hi = np.quantile(dense, [0.05, 0.5, 0.95], axis=0, method="inverted_cdf")
     np.testing.assert_array_equal(got.rank_lower, lo)
     np.testing.assert_array_equal(got.rank_median, med)
     np.testing.assert_array_equal(got.rank_upper, hi)
-    assert (got.passes > 1) == (histogram_cells < 1000)
+    assert (got.passes > 1) == (histogram_cells < 1000 and held_cells == 0)
+    held = ranks.rank_summary(theta, level=0.9, top=3, held_cells=10**8)
+    refined = ranks.rank_summary(theta, level=0.9, top=3, held_cells=0, histogram_cells=90)
+    np.testing.assert_array_equal(held.prob_best_k, refined.prob_best_k)
+    np.testing.assert_array_equal(held.prob_worst_k, refined.prob_worst_k)
 
 
 def test_draw_ranks_match_scipy_rankdata_average():
