@@ -315,19 +315,20 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
         out["k"][cols] = loo.pareto_k.values[inv]
         out["lppd"][cols] = (special.logsumexp(ll, axis=1) - np.log(samples))[inv]
         out["constant"][cols] = (np.ptp(ll, axis=1) == 0)[inv]
-        y_new = _new_group_replicates(idata, groups, pit_draws, rng)
+        # LOO-PIT's two ends are functions of y_group's weights and the counts: once per
+        # pair too (each group's randomisation between them is its own)
+        y_new = _new_group_replicates(idata, reps, pit_draws, rng)
         if y_new is None:
             out["pit_possible"] = False
             continue
-        y_obs = y_all[groups]
+        y_obs = y_all[reps]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             log_w, _ = az.psislw(-ll[:, pit_draws], reff)
-            log_w = log_w[inv]
-            out["at"][cols] = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
-            out["below"][cols] = np.asarray(
-                az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w)
-            )
+            at = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
+            below = np.asarray(az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w))
+        out["at"][cols] = at[inv]
+        out["below"][cols] = below[inv]
     return out
 
 
