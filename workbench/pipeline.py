@@ -52,6 +52,9 @@ PRIOR_USERS = {
 }
 #: Most theta cells (draws x groups) an exact engine stores unless draws are asked for.
 EXACT_STORED_CELLS = 100_000_000
+#: Fewest draws in all (chains x draws) an exact engine keeps by default: twice PSIS-LOO's
+#: least, and enough for the order statistics of a 95% rank interval to exist.
+EXACT_FEWEST_DRAWS = 100
 
 
 def load(source, settings: FitSettings, client=None) -> LoadedData:
@@ -141,7 +144,8 @@ def default_draws(settings: FitSettings, groups: int) -> int:
 
     Exact engines report means and intervals from closed forms, so their stored draws only
     feed ranks and checks: they keep at most EXACT_STORED_CELLS values of theta (at least
-    100 per chain). 100,000 groups x 4 chains get 250 draws per chain.
+    EXACT_FEWEST_DRAWS in all). 100,000 groups x 4 chains get 250 draws per chain; 1,000,000
+    groups x 4 chains 25.
     """
     if settings["draws"] is not None:
         return int(settings["draws"])
@@ -149,7 +153,7 @@ def default_draws(settings: FitSettings, groups: int) -> int:
     engine = engines[0] if settings["engine"] == "auto" else settings["engine"]
     chains = int(settings["chains"])
     if engine == "exact" and chains * 1000 * groups > EXACT_STORED_CELLS:
-        return max(100, EXACT_STORED_CELLS // (chains * groups))
+        return max(-(-EXACT_FEWEST_DRAWS // chains), EXACT_STORED_CELLS // (chains * groups))
     return 1000
 
 

@@ -38,6 +38,8 @@ def test_default_draws_bound_exact_storage():
     settings = FitSettings.from_options(model="beta-binomial", engine="auto")
     assert default_draws(settings, 1000) == 1000
     assert default_draws(settings, 100_000) == 250
-    assert default_draws(settings, 10_000_000) == 100
+    assert default_draws(settings, 1_000_000) == 25  # 1e8 values of theta
+    assert default_draws(settings, 10_000_000) == 25  # never fewer than 100 draws in all
+    assert default_draws(settings.replace(chains=3), 10_000_000) == 34
     assert default_draws(settings.replace(engine="mcmc"), 100_000) == 1000
     assert default_draws(settings.replace(draws=77), 100_000) == 77
