@@ -116,24 +116,24 @@ def _mid_tail_areas(y_obs: np.ndarray, y_rep: np.ndarray) -> tuple[np.ndarray, n
 
     ``y_rep`` is (groups, draws) of whole numbers; the reference of group j is its row.
     Observed: ``P(Y < y) + 0.5 P(Y = y)`` over the row; a replicate: the same over the
-    row's *other* replicates. Rows are offset so one sorted vector serves them all.
+    row's *other* replicates, read from the row sorted (a run of equal values at sorted
+    positions first..last has first values below it and last - first others equal to it).
     """
     g, s = y_rep.shape
-    span = float(max(y_rep.max(initial=0), y_obs.max(initial=0))) + 2.0
-    offset = (np.arange(g) * span)[:, None]
-    flat = np.sort(y_rep + offset, axis=1).ravel()
-    base = (np.arange(g) * s)[:, None]
-
-    def counts(values):
-        shifted = values + offset
-        less = np.searchsorted(flat, shifted, side="left") - base
-        equal = np.searchsorted(flat, shifted, side="right") - base - less
-        return less, equal
-
-    less, equal = counts(y_obs[:, None])
-    observed = ((less + 0.5 * equal) / s)[:, 0]
-    less, equal = counts(y_rep)
-    replicated = (less + 0.5 * (equal - 1)) / max(s - 1, 1)
+    column = y_obs[:, None]
+    observed = ((y_rep < column).sum(axis=1) + 0.5 * (y_rep == column).sum(axis=1)) / s
+    order = np.argsort(y_rep, axis=1)
+    ordered = np.take_along_axis(y_rep, order, axis=1)
+    pos = np.broadcast_to(np.arange(s), (g, s))
+    change = ordered[:, 1:] != ordered[:, :-1]
+    starts = np.ones((g, s), dtype=bool)
+    starts[:, 1:] = change
+    ends = np.ones((g, s), dtype=bool)
+    ends[:, :-1] = change
+    first = np.maximum.accumulate(np.where(starts, pos, 0), axis=1)
+    last = np.minimum.accumulate(np.where(ends, pos, s - 1)[:, ::-1], axis=1)[:, ::-1]
+    replicated = np.empty((g, s))
+    np.put_along_axis(replicated, order, (first + 0.5 * (last - first)) / max(s - 1, 1), axis=1)
     return observed, replicated
 
 

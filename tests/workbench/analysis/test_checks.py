@@ -141,6 +141,10 @@ def test_tail_areas_match_a_direct_count():
     others = np.delete(y_rep[j], i)
     v = y_rep[j, i]
     assert rep[j, i] == pytest.approx((others < v).mean() + 0.5 * (others == v).mean())
+    # every replicate: counts over the row's other 49 (a value equals itself once)
+    value, other = y_rep[:, :, None], y_rep[:, None, :]
+    want_rep = ((value > other).sum(-1) + 0.5 * ((value == other).sum(-1) - 1)) / 49
+    np.testing.assert_allclose(rep, want_rep)
 
 
 def test_observed_statistics_are_the_data_own(spread, spread_checks):
