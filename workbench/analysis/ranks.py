@@ -30,9 +30,10 @@ from .draws import chunks as _chunks
 
 #: largest number of histogram cells held while refining rank quantiles
 HISTOGRAM_CELLS = 16_000_000
-#: most draws x groups ranks held at once (int32, 4 bytes each) to read quantiles in one pass;
-#: larger posteriors refine histograms over several passes instead
-HELD_RANK_CELLS = 100_000_000
+#: most draws x groups ranks held at once (int32, 500 MB at most) to read quantiles in one pass,
+#: a margin above the 1e8 values of theta an exact fit keeps by default (1,000,001 groups x 100
+#: draws is just over 1e8); larger posteriors refine histograms over several passes instead
+HELD_RANK_CELLS = 125_000_000
 
 
 def _check_better(better: str) -> str:
