@@ -266,6 +266,22 @@ def independent_summary(values, *, lower: float = 0.025, upper: float = 0.975,
     R-hat, which measures mixing, is the plain split R-hat (no ranks; a cheap check that the
     chains agree) when ``rhat_too``, else NaN.
     """
+    values = np.asarray(values)
+    if values.ndim == 3:  # (chain, draw, K): by blocks of quantities, to bound the copies
+        step = max(1, INDEPENDENT_BLOCK_CELLS // max(values.shape[0] * values.shape[1], 1))
+        blocks = [
+            _independent_block(values[:, :, s : s + step], lower, upper, rhat_too)
+            for s in range(0, values.shape[2], step)
+        ]
+        return {key: np.concatenate([b[key] for b in blocks]) for key in blocks[0]}
+    return _independent_block(values, lower, upper, rhat_too)
+
+
+#: most draws x quantities :func:`independent_summary` copies at once
+INDEPENDENT_BLOCK_CELLS = 4_000_000
+
+
+def _independent_block(values, lower, upper, rhat_too) -> dict[str, np.ndarray]:
     x = _as3d(values)
     k, chains, draws = x.shape
     size = chains * draws

@@ -85,3 +85,12 @@ def test_independent_summary_on_independent_draws():
     for key in ("mcse_mean", "mcse_lower", "mcse_upper"):
         ratio = np.median(got[key] / ref[key])
         assert 0.8 < ratio < 1.25, key
+
+
+def test_independent_summary_by_blocks_equals_one_block(monkeypatch):
+    # the blocks of quantities that bound its copies change no number
+    x = np.random.default_rng(6).beta(3, 17, size=(4, 100, 23))
+    whole = fast.independent_summary(x)
+    monkeypatch.setattr(fast, "INDEPENDENT_BLOCK_CELLS", 4 * 100 * 5)  # blocks of 5, one of 3
+    for key, value in fast.independent_summary(x).items():
+        np.testing.assert_array_equal(value, whole[key], err_msg=key)
