@@ -22,6 +22,7 @@ from .analysis.casemix import adjusted_draws, adjusted_ranking_columns, case_mix
 from .analysis.checks import check_posterior
 from .analysis.diagnostics import (
     MISFIT,
+    Thresholds,
     after_retry,
     diagnose,
     first_remedy_settings,
@@ -52,9 +53,9 @@ PRIOR_USERS = {
 }
 #: Most theta cells (draws x groups) an exact engine stores unless draws are asked for.
 EXACT_STORED_CELLS = 100_000_000
-#: Fewest draws in all (chains x draws) an exact engine keeps by default: twice PSIS-LOO's
-#: least, and enough for the order statistics of a 95% rank interval to exist.
-EXACT_FEWEST_DRAWS = 100
+#: Fewest draws in all (chains x draws) an exact engine keeps by default: the pass mark for
+#: independent draws, so a default fit can be final whatever its size.
+EXACT_FEWEST_DRAWS = Thresholds().independent_draws
 
 
 def load(source, settings: FitSettings, client=None) -> LoadedData:
@@ -145,7 +146,7 @@ def default_draws(settings: FitSettings, groups: int) -> int:
     Exact engines report means and intervals from closed forms, so their stored draws only
     feed ranks and checks: they keep at most EXACT_STORED_CELLS values of theta (at least
     EXACT_FEWEST_DRAWS in all). 100,000 groups x 4 chains get 250 draws per chain; 1,000,000
-    groups x 4 chains 25.
+    groups x 4 chains 100, x 2 chains 200.
     """
     if settings["draws"] is not None:
         return int(settings["draws"])
