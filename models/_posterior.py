@@ -24,6 +24,7 @@ with warnings.catch_warnings():
     import arviz as az
 
 from ._data import GroupCounts
+from ._gridposterior import distinct_pairs
 from ._stats import betabinom_logpmf, log_choose
 
 #: Largest draws x groups array stored in memory for a log-likelihood (float64 cells).
@@ -175,7 +176,10 @@ def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
         kappa = idata.posterior["kappa"].values[..., None]
         a = mu * kappa
         b = (1 - mu) * kappa
-        integrated = betabinom_logpmf(y, n, a, b)
+        # a function of the group's (successes, trials) alone: once per distinct pair
+        pairs, row = distinct_pairs(data.successes, data.trials)
+        pairs = pairs.astype(float)
+        integrated = np.take(betabinom_logpmf(pairs[:, 0], pairs[:, 1], a, b), row, axis=-1)
     elif model in ("logit-normal", "nested") and "cell_trials" in idata.constant_data:
         from ._casemix import cell_log_likelihood
 

@@ -192,3 +192,21 @@ def test_exact_and_mcmc_agree_within_4_mcse():
     mean = mc.idata_.posterior["theta"].mean(("chain", "draw")).values
     z = (mean - exact["posterior_mean"].to_numpy()) / mcse
     assert np.mean(np.abs(z) <= 4) >= 0.99
+
+
+def test_group_integrated_log_likelihood_is_scipy_betabinom_for_every_group():
+    # reference: scipy.stats.betabinom.logpmf, group by group; the model computes it once per
+    # distinct (successes, trials) pair, so groups sharing a pair must get the same values
+    from workbench.models._posterior import log_likelihood_arrays
+
+    rng = np.random.default_rng(8)
+    n = rng.integers(1, 8, 300)
+    y = rng.binomial(n, 0.3)
+    model = BetaBinomial(random_seed=1, draws=50, chains=2).fit(
+        GroupCounts([f"s{i}" for i in range(300)], y, n))
+    post = model.idata_.posterior
+    got = log_likelihood_arrays(model.idata_)["y_group"]
+    mu, kappa = post["mu"].values[..., None], post["kappa"].values[..., None]
+    want = stats.betabinom.logpmf(y, n, mu * kappa, (1 - mu) * kappa)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    assert got.shape == (2, 50, 300) and len(set(zip(y, n, strict=True))) < 40
