@@ -30,10 +30,11 @@ from .draws import chunks as _chunks
 
 #: largest number of histogram cells held while refining rank quantiles
 HISTOGRAM_CELLS = 16_000_000
-#: most draws x groups ranks held at once (int32, 500 MB at most) to read quantiles in one pass,
-#: a margin above the 1e8 values of theta an exact fit keeps by default (1,000,001 groups x 100
-#: draws is just over 1e8); larger posteriors refine histograms over several passes instead
-HELD_RANK_CELLS = 125_000_000
+#: most draws x groups ranks held at once (int32, 2 GB at most) to read quantiles in one pass:
+#: half the memory of the largest theta a fit may hold (4 GB of float64), so every default fit
+#: ranks in one pass (a million groups x 400 draws: 1.6 GB); larger posteriors, given as
+#: arrays, refine histograms over several passes instead, each ranking every draw again
+HELD_RANK_CELLS = 500_000_000
 
 
 def _check_better(better: str) -> str:
