@@ -75,6 +75,7 @@ import numpy as np
 import pandas as pd
 
 from ..models import attr, counts_of, theta_draws
+from .draws import tied_runs
 from .loo import (
     _THETA_EPS,
     GroupLoo,
@@ -123,15 +124,7 @@ def _mid_tail_areas(y_obs: np.ndarray, y_rep: np.ndarray) -> tuple[np.ndarray, n
     column = y_obs[:, None]
     observed = ((y_rep < column).sum(axis=1) + 0.5 * (y_rep == column).sum(axis=1)) / s
     order = np.argsort(y_rep, axis=1)
-    ordered = np.take_along_axis(y_rep, order, axis=1)
-    pos = np.broadcast_to(np.arange(s), (g, s))
-    change = ordered[:, 1:] != ordered[:, :-1]
-    starts = np.ones((g, s), dtype=bool)
-    starts[:, 1:] = change
-    ends = np.ones((g, s), dtype=bool)
-    ends[:, :-1] = change
-    first = np.maximum.accumulate(np.where(starts, pos, 0), axis=1)
-    last = np.minimum.accumulate(np.where(ends, pos, s - 1)[:, ::-1], axis=1)[:, ::-1]
+    first, last = tied_runs(np.take_along_axis(y_rep, order, axis=1))
     replicated = np.empty((g, s))
     np.put_along_axis(replicated, order, (first + 0.5 * (last - first)) / max(s - 1, 1), axis=1)
     return observed, replicated

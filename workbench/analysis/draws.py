@@ -82,6 +82,23 @@ def group_draws(idata, estimates, *, target: float | None = None, closed=None) -
     )
 
 
+def tied_runs(ordered: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First and last position of the run of equal values each entry of a row belongs to.
+
+    ``ordered`` is (rows, n), each row sorted; positions are 0-based within the row.
+    """
+    rows, n = ordered.shape
+    pos = np.broadcast_to(np.arange(n, dtype=np.int64), (rows, n))
+    change = ordered[:, 1:] != ordered[:, :-1]
+    starts = np.ones((rows, n), dtype=bool)
+    starts[:, 1:] = change
+    ends = np.ones((rows, n), dtype=bool)
+    ends[:, :-1] = change
+    first = np.maximum.accumulate(np.where(starts, pos, 0), axis=1)
+    last = np.minimum.accumulate(np.where(ends, pos, n - 1)[:, ::-1], axis=1)[:, ::-1]
+    return first, last
+
+
 def chunks(n_draws: int, n_groups: int, cells: int = CHUNK_CELLS):
     step = max(1, cells // max(n_groups, 1))
     for start in range(0, n_draws, step):

@@ -25,7 +25,7 @@ import pandas as pd
 
 from ..models.exceptions import DataError
 from ..options import BETTER, label
-from .draws import CHUNK_CELLS
+from .draws import CHUNK_CELLS, tied_runs
 from .draws import chunks as _chunks
 
 #: largest number of histogram cells held while refining rank quantiles
@@ -55,18 +55,12 @@ def _block_positions(theta: np.ndarray, better: str) -> tuple[np.ndarray, np.nda
     order = np.argsort(key, axis=1)  # any order within a tie: blocks are found below
     ordered = np.take_along_axis(key, order, axis=1)
     rows, g = ordered.shape
-    pos = np.broadcast_to(np.arange(g, dtype=np.int64), (rows, g))
-    tied = ordered[:, 1:] == ordered[:, :-1]
-    if not tied.any():  # the usual case: every block is one group
+    if not (ordered[:, 1:] == ordered[:, :-1]).any():  # the usual case: no ties
         lo = np.empty((rows, g), dtype=np.int64)
-        np.put_along_axis(lo, order, pos, axis=1)
+        np.put_along_axis(lo, order, np.broadcast_to(np.arange(g, dtype=np.int64), (rows, g)),
+                          axis=1)
         return lo, lo
-    starts = np.ones((rows, g), dtype=bool)
-    starts[:, 1:] = ~tied
-    ends = np.ones((rows, g), dtype=bool)
-    ends[:, :-1] = ~tied
-    first = np.maximum.accumulate(np.where(starts, pos, 0), axis=1)
-    last = np.minimum.accumulate(np.where(ends, pos, g - 1)[:, ::-1], axis=1)[:, ::-1]
+    first, last = tied_runs(ordered)
     lo = np.empty((rows, g), dtype=np.int64)
     hi = np.empty((rows, g), dtype=np.int64)
     np.put_along_axis(lo, order, first, axis=1)
