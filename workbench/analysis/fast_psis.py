@@ -27,8 +27,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-#: Cells (rows x draws, or rows x grid x tail in the Pareto fit) handled at once.
+#: Cells (rows x draws) handled at once.
 BLOCK_CELLS = 4_000_000
+
+#: Cells of the Pareto fit's (rows x grid x tail) array at once: small enough to stay in cache.
+FIT_CELLS = 250_000
 
 _CUTOFF_MIN = float(np.log(np.finfo(float).tiny))
 _EPS = np.finfo(float).eps
@@ -65,14 +68,17 @@ def gpd_fit(tails: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     base = 1 - np.sqrt(m_est / (np.arange(1, m_est + 1, dtype=float) - 0.5))
     k_out = np.empty(rows)
     s_out = np.empty(rows)
-    for blk in _row_blocks(rows, m_est * max(n, m_est), BLOCK_CELLS):
+    for blk in _row_blocks(rows, m_est * n, FIT_CELLS):
         ary = tails[blk]
         b = base[None, :] / (_PRIOR_BS * ary[:, int(n / 4 + 0.5) - 1])[:, None]
         b += (1 / ary[:, -1])[:, None]
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
             k_ary = np.log1p(-b[:, :, None] * ary[:, None, :]).mean(axis=2)
             len_scale = n * (np.log(-(b / k_ary)) - k_ary - 1)
-            weights = 1 / np.exp(len_scale[:, None, :] - len_scale[:, :, None]).sum(axis=2)
+            # ArviZ forms 1 / sum_j exp(L_j - L_i) (m x m per row); exp(L_i - logsumexp(L))
+            # is the same weight (to rounding) from m exponentials, and gives 0 or NaN where
+            # that does, so the same grid points are dropped below
+            weights = np.exp(len_scale - _logsumexp_rows(len_scale)[:, None])
             real = weights >= 10 * _EPS  # negligible (or NaN) weights are dropped
             total = np.where(real, weights, 0.0).sum(axis=1)
             b_post = np.where(real, b * (weights / total[:, None]), 0.0).sum(axis=1)
@@ -106,7 +112,7 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
     max_x = x.max(axis=1, keepdims=True)
     with np.errstate(invalid="ignore"):
         x -= max_x
-    ok = ~np.isnan(x).any(axis=1)
+    ok = np.isfinite(max_x[:, 0])  # else the centred row holds NaN (np.max passes NaN on)
     if ok.any():
         xo = x[ok]
         part = np.argpartition(xo, cut, axis=1)
