@@ -23,6 +23,7 @@ Work is done by blocks of rows, so memory stays bounded whatever the number of g
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -37,6 +38,19 @@ _CUTOFF_MIN = float(np.log(np.finfo(float).tiny))
 _EPS = np.finfo(float).eps
 _PRIOR_BS = 3
 _PRIOR_K = 10
+
+
+def _quiet(func):
+    """Run ``func`` without numpy's floating-point warnings: NaN, inf and 0 results are part
+    of ArviZ's answers here (a -inf log-likelihood, a failed fit) and reach the caller as
+    values (k = inf, NaN weights), which is how the callers report them."""
+
+    @functools.wraps(func)
+    def run(*args, **kwargs):
+        with np.errstate(all="ignore"):
+            return func(*args, **kwargs)
+
+    return run
 
 
 def tail_cut(samples: int, reff: float) -> int:
@@ -54,12 +68,11 @@ def _row_blocks(rows: int, width: int, cells: int):
 def _logsumexp_rows(x: np.ndarray) -> np.ndarray:
     """Row-wise log-sum-exp in ArviZ's order of operations (max, shift, exp, sum, log, add)."""
     m = x.max(axis=1, keepdims=True)
-    with np.errstate(invalid="ignore"):
-        s = np.exp(x - m).sum(axis=1)
-    with np.errstate(divide="ignore"):
-        return np.log(s) + m[:, 0]
+    s = np.exp(x - m).sum(axis=1)
+    return np.log(s) + m[:, 0]
 
 
+@_quiet
 def gpd_fit(tails: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Generalized Pareto (k, sigma) per row of ``tails`` (rows sorted ascending, positive):
     Zhang & Stephens (2009) with ArviZ's prior on k. All rows share one tail length."""
@@ -72,18 +85,17 @@ def gpd_fit(tails: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         ary = tails[blk]
         b = base[None, :] / (_PRIOR_BS * ary[:, int(n / 4 + 0.5) - 1])[:, None]
         b += (1 / ary[:, -1])[:, None]
-        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            k_ary = np.log1p(-b[:, :, None] * ary[:, None, :]).mean(axis=2)
-            len_scale = n * (np.log(-(b / k_ary)) - k_ary - 1)
-            # ArviZ forms 1 / sum_j exp(L_j - L_i) (m x m per row); exp(L_i - logsumexp(L))
-            # is the same weight (to rounding) from m exponentials, and gives 0 or NaN where
-            # that does, so the same grid points are dropped below
-            weights = np.exp(len_scale - _logsumexp_rows(len_scale)[:, None])
-            real = weights >= 10 * _EPS  # negligible (or NaN) weights are dropped
-            total = np.where(real, weights, 0.0).sum(axis=1)
-            b_post = np.where(real, b * (weights / total[:, None]), 0.0).sum(axis=1)
-            k_post = np.log1p(-b_post[:, None] * ary).mean(axis=1)
-            s_out[blk] = -k_post / b_post
+        k_ary = np.log1p(-b[:, :, None] * ary[:, None, :]).mean(axis=2)
+        len_scale = n * (np.log(-(b / k_ary)) - k_ary - 1)
+        # ArviZ forms 1 / sum_j exp(L_j - L_i) (m x m per row); exp(L_i - logsumexp(L))
+        # is the same weight (to rounding) from m exponentials, and gives 0 or NaN where
+        # that does, so the same grid points are dropped below
+        weights = np.exp(len_scale - _logsumexp_rows(len_scale)[:, None])
+        real = weights >= 10 * _EPS  # negligible (or NaN) weights are dropped
+        total = np.where(real, weights, 0.0).sum(axis=1)
+        b_post = np.where(real, b * (weights / total[:, None]), 0.0).sum(axis=1)
+        k_post = np.log1p(-b_post[:, None] * ary).mean(axis=1)
+        s_out[blk] = -k_post / b_post
         k_out[blk] = (n * k_post + _PRIOR_K * 0.5) / (n + _PRIOR_K)
     return k_out, s_out
 
@@ -94,9 +106,8 @@ def _gpd_quantiles(n: int, k: np.ndarray, sigma: np.ndarray) -> np.ndarray:
     lp = np.log1p(-probs)[None, :]
     small = np.abs(k) < _EPS
     kk = np.where(small, 1.0, k)[:, None]
-    with np.errstate(invalid="ignore", over="ignore"):
-        q = np.where(small[:, None], -lp, np.expm1(-kk * lp) / kk)
-        q *= sigma[:, None]
+    q = np.where(small[:, None], -lp, np.expm1(-kk * lp) / kk)
+    q *= sigma[:, None]
     q[sigma <= 0] = np.nan  # ArviZ: sigma <= 0 gives no quantiles (NaN sigma gives NaN anyway)
     return q
 
@@ -110,8 +121,7 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
         raise ValueError(f"PSIS needs at least 2 draws per row; got {samples}.")
     k = np.full(rows, np.inf)
     max_x = x.max(axis=1, keepdims=True)
-    with np.errstate(invalid="ignore"):
-        x -= max_x
+    x -= max_x
     ok = np.isfinite(max_x[:, 0])  # else the centred row holds NaN (np.max passes NaN on)
     if ok.any():
         xo = x[ok]
@@ -142,8 +152,7 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
             if fin.any():
                 sf = sel[fin]
                 smoothed = _gpd_quantiles(int(n), kn[fin], sigma[fin])
-                with np.errstate(invalid="ignore"):
-                    smoothed = np.log(smoothed + exp_cut[fin, None])
+                smoothed = np.log(smoothed + exp_cut[fin, None])
                 block = xo[sf]
                 np.put_along_axis(block, pos[fin], smoothed, axis=1)
                 block[block > 0] = 0  # truncate at the largest raw ratio
@@ -151,13 +160,13 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
         x[ok] = xo
         k[ok] = k_ok
     if normalize:
-        with np.errstate(invalid="ignore"):
-            x -= _logsumexp_rows(x)[:, None]
+        x -= _logsumexp_rows(x)[:, None]
     else:
         x += max_x
     return x, k
 
 
+@_quiet
 def psis_log_weights(
     log_ratios, reff: float = 1.0, normalize: bool = True, cells: int = BLOCK_CELLS
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -187,6 +196,7 @@ def good_k_of(samples: int) -> float:
     return min(1 - 1 / np.log10(samples), 0.7)
 
 
+@_quiet
 def psis_loo(log_lik, reff: float = 1.0, cells: int = BLOCK_CELLS) -> PointwiseLoo:
     """Pointwise PSIS-LOO of (groups, samples) log-likelihoods: elpd_i, Pareto k, good_k."""
     ll = np.asarray(log_lik, dtype=float)
@@ -196,12 +206,12 @@ def psis_loo(log_lik, reff: float = 1.0, cells: int = BLOCK_CELLS) -> PointwiseL
     k = np.empty(ll.shape[0])
     for blk in _row_blocks(ll.shape[0], ll.shape[1], cells):
         lw, k[blk] = _smooth_block(-ll[blk], reff, True)
-        with np.errstate(invalid="ignore"):
-            lw += ll[blk]
+        lw += ll[blk]
         elpd[blk] = _logsumexp_rows(lw)
     return PointwiseLoo(elpd, k, good_k_of(ll.shape[1]))
 
 
+@_quiet
 def loo_pit(y, y_hat, log_weights, cells: int = BLOCK_CELLS) -> np.ndarray:
     """LOO-PIT per group: the weighted share of ``y_hat`` (groups, samples) at or below ``y``
     (groups,), capped at 1; ``az.loo_pit(y=y, y_hat=y_hat, log_weights=log_weights)`` for
