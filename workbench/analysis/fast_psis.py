@@ -85,7 +85,8 @@ def gpd_fit(tails: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         ary = tails[blk]
         b = base[None, :] / (_PRIOR_BS * ary[:, int(n / 4 + 0.5) - 1])[:, None]
         b += (1 / ary[:, -1])[:, None]
-        k_ary = np.log1p(-b[:, :, None] * ary[:, None, :]).mean(axis=2)
+        grid = -b[:, :, None] * ary[:, None, :]
+        k_ary = np.log1p(grid, out=grid).mean(axis=2)
         len_scale = n * (np.log(-(b / k_ary)) - k_ary - 1)
         # ArviZ forms 1 / sum_j exp(L_j - L_i) (m x m per row); exp(L_i - logsumexp(L))
         # is the same weight (to rounding) from m exponentials, and gives 0 or NaN where
@@ -113,7 +114,8 @@ def _gpd_quantiles(n: int, k: np.ndarray, sigma: np.ndarray) -> np.ndarray:
 
 
 def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarray, np.ndarray]:
-    """PSIS of every row of ``x`` (modified in place and returned) and the rows' k."""
+    """PSIS of every row of ``x`` (a C-contiguous block of rows, smoothed in place and
+    returned) and the rows' k."""
     rows, samples = x.shape
     big = tail_cut(samples, reff)
     cut = samples - big - 1  # ArviZ's index -big - 1 into the ascending order
@@ -124,7 +126,7 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
     x -= max_x
     ok = np.isfinite(max_x[:, 0])  # else the centred row holds NaN (np.max passes NaN on)
     if ok.any():
-        xo = x[ok]
+        xo = x if ok.all() else x[ok]  # in place when every row is usable
         part = np.argpartition(xo, cut, axis=1)
         cut_val = np.take_along_axis(xo, part[:, cut : cut + 1], axis=1)[:, 0]
         top_idx = part[:, cut + 1 :]
@@ -157,7 +159,8 @@ def _smooth_block(x: np.ndarray, reff: float, normalize: bool) -> tuple[np.ndarr
                 np.put_along_axis(block, pos[fin], smoothed, axis=1)
                 block[block > 0] = 0  # truncate at the largest raw ratio
                 xo[sf] = block
-        x[ok] = xo
+        if xo is not x:
+            x[ok] = xo
         k[ok] = k_ok
     if normalize:
         x -= _logsumexp_rows(x)[:, None]
@@ -175,10 +178,10 @@ def psis_log_weights(
     lr = np.asarray(log_ratios, dtype=float)
     if lr.ndim != 2:
         raise ValueError(f"log_ratios must be (groups, samples); got shape {lr.shape}.")
-    out = np.empty_like(lr)
+    out = lr.copy()
     k = np.empty(lr.shape[0])
     for blk in _row_blocks(lr.shape[0], lr.shape[1], cells):
-        out[blk], k[blk] = _smooth_block(lr[blk].copy(), reff, normalize)
+        k[blk] = _smooth_block(out[blk], reff, normalize)[1]  # rows smoothed in place
     return out, k
 
 
