@@ -22,6 +22,7 @@ from ..models._grid import HyperPrior, fit_grid
 from ..models._gridposterior import distinct_pairs
 from ..models._posterior import logit_means
 from ..models._stats import betabinom_cdf, betabinom_logpmf
+from . import fast_psis
 from .settings import NOT_COMPUTED, CheckSettings
 from .settings import seed_of as _seed
 
@@ -281,6 +282,44 @@ def _pair_keys(idata) -> np.ndarray | None:
     return distinct_pairs(data.successes, data.trials)[1]
 
 
+#: Smooth with ArviZ's own per-group functions instead of fast_psis (the same numbers, one
+#: Python call per group); kept so the two can be compared.
+USE_ARVIZ_PSIS = False
+
+
+def _pointwise_loo(ll: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndarray, float]:
+    """PSIS-LOO of (groups, samples) ``ll``: elpd_loo and Pareto k per group, and good_k
+    (min(1 - 1/log10(S), 0.7), Vehtari et al. 2024), as ``az.loo(pointwise=True)`` gives."""
+    if not USE_ARVIZ_PSIS:
+        loo = fast_psis.psis_loo(ll, reff)
+        return loo.elpd_i, loo.pareto_k, float(loo.good_k)
+    samples = ll.shape[1]
+    frame = az.InferenceData(
+        log_likelihood=xr.Dataset(
+            {"y_group": (("chain", "draw", "group"), ll.T.reshape(1, samples, len(ll)))}
+        )
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # high k is reported in the table, not as a warning
+        loo = az.loo(frame, pointwise=True, reff=reff, var_name="y_group")
+    return loo.loo_i.values, loo.pareto_k.values, float(loo.good_k)
+
+
+def _pit_ends(y_obs, y_new, ll, reff: float) -> tuple[np.ndarray, np.ndarray]:
+    """LOO-PIT's two ends (the weighted share of replicates below and at ``y_obs``) from the
+    PSIS weights of (groups, draws) ``ll``, as ``az.loo_pit`` gives them (float counts)."""
+    if not USE_ARVIZ_PSIS:
+        log_w, _ = fast_psis.psis_log_weights(-ll, reff)
+        return (fast_psis.loo_pit(y_obs - 0.5, y_new, log_w),
+                fast_psis.loo_pit(y_obs, y_new, log_w))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        log_w, _ = az.psislw(-ll, reff)
+        at = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
+        below = np.asarray(az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w))
+    return below, at
+
+
 def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
     """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups."""
     reff = _relative_efficiency(idata)
@@ -302,17 +341,9 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
             _, first, inv = np.unique(pair[groups], return_index=True, return_inverse=True)
             reps, inv = groups[first], inv.ravel()
         ll = _group_loglik(idata, reps)  # (distinct groups, samples)
-        frame = az.InferenceData(
-            log_likelihood=xr.Dataset(
-                {"y_group": (("chain", "draw", "group"), ll.T.reshape(1, samples, len(reps)))}
-            )
-        )
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # high k is reported in the table, not as a warning
-            loo = az.loo(frame, pointwise=True, reff=reff, var_name="y_group")
-        out["good_k"] = float(loo.good_k)  # min(1 - 1/log10(S), 0.7) (Vehtari et al. 2024)
-        out["elpd"][cols] = loo.loo_i.values[inv]
-        out["k"][cols] = loo.pareto_k.values[inv]
+        elpd, k, out["good_k"] = _pointwise_loo(ll, reff)
+        out["elpd"][cols] = elpd[inv]
+        out["k"][cols] = k[inv]
         out["lppd"][cols] = (special.logsumexp(ll, axis=1) - np.log(samples))[inv]
         out["constant"][cols] = (np.ptp(ll, axis=1) == 0)[inv]
         # LOO-PIT's two ends are functions of y_group's weights and the counts: once per
@@ -321,12 +352,7 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
         if y_new is None:
             out["pit_possible"] = False
             continue
-        y_obs = y_all[reps]
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            log_w, _ = az.psislw(-ll[:, pit_draws], reff)
-            at = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
-            below = np.asarray(az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w))
+        below, at = _pit_ends(y_all[reps], y_new, ll[:, pit_draws], reff)
         out["at"][cols] = at[inv]
         out["below"][cols] = below[inv]
     return out
