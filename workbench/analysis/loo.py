@@ -478,9 +478,9 @@ def pit_uniformity(table: pd.DataFrame, settings: CheckSettings) -> dict:
         "share_below_0.05": float(np.mean(pit < 0.05)),
         "share_above_0.95": float(np.mean(pit > 0.95)),
         "verdict": "miscalibrated" if test.pvalue < settings.lower else "calibrated",
-        "method": "randomised LOO-PIT (lower + U (upper - lower)) from az.loo_pit with PSIS"
-        " weights of y_group, or exact where refitted; Kolmogorov-Smirnov test against"
-        " Uniform(0, 1) (scipy.stats.kstest)",
+        "method": "randomised LOO-PIT (lower + U (upper - lower)) from PSIS weights of"
+        " y_group (workbench's vectorised PSIS, equal to ArviZ's psislw and loo_pit), or exact"
+        " where refitted; Kolmogorov-Smirnov test against Uniform(0, 1) (scipy.stats.kstest)",
     }
 
 
