@@ -1,0 +1,369 @@
+"""A fast CSV encoder that writes the same bytes as pandas' writer, or declines.
+
+:func:`workbench.io.atomic.write_csv` writes with ``DataFrame.to_csv(index=False,
+float_format="%.10g", quoting=...)``. On a million rows most of that time is Python's
+``"%.10g" % value`` for each float. This module builds the same text column by column with
+NumPy and pyarrow's compute kernels:
+
+* floats: the ten significant digits come from one scaled multiplication, rounded; a value
+  whose scaled fraction lies too near a half (where the rounding could go either way) or whose
+  decimal exponent is unsure, is formatted by Python's own ``%`` instead. The bound: the scaled
+  value carries at most four roundings (two constants, two products: relative error below
+  5e-16, so below 5e-6 on a ten-digit integer), far inside the margin of 1e-4 kept from every
+  half, so the integer kept is the correctly rounded one (ties never pass the margin);
+* ints, bools, nullable ints and bools, text (``str`` dtype, or object columns holding only
+  ``str`` and missing values), quoted by the standard library's ``csv`` rules as pandas uses
+  them (QUOTE_MINIMAL or QUOTE_NONNUMERIC, line end ``\\n``).
+
+Anything else (dates, categoricals, complex, object columns holding other objects, column
+labels that are not text, no columns, text pyarrow cannot hold) is declined:
+:func:`why_not` names the reason and the caller keeps pandas.
+"""
+
+from __future__ import annotations
+
+import csv
+import functools
+import io
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+#: the format pandas is given; this encoder writes only this one
+FLOAT_FORMAT = "%.10g"
+#: a scaled value this near a half (or a decade's edge) is formatted by Python instead
+_MARGIN = 1e-4
+#: rows encoded at a time (bounded below by the bytes of one chunk, see _chunk_rows)
+CHUNK_ROWS = 131_072
+_CHUNK_BYTES = 256 * 2**20
+
+
+def _quote_triggers() -> str:
+    """The characters that make this Python's csv writer quote a field (line end ``\\n``).
+
+    Asked of the csv module itself, so a Python that also quotes ``\\r`` is followed.
+    """
+    found = []
+    for c in ",\"\n\r\t\x00 '":
+        out = io.StringIO()
+        csv.writer(out, lineterminator="\n").writerow([f"a{c}b", "x"])
+        if out.getvalue().startswith('"'):
+            found.append(c)
+    return "".join(found)
+
+
+QUOTE_TRIGGERS = _quote_triggers()
+_TRIGGER_PATTERN = "[" + "".join("\\" + c if c in "\\]^-[" else c for c in QUOTE_TRIGGERS
+                                 ).replace("\n", "\\n").replace("\r", "\\r") + "]"
+
+# 10**p as a product of two doubles for every p a double's scaling can need
+_P_LOW, _P_HIGH = -330, 345
+_POW_A = np.ones(_P_HIGH - _P_LOW + 1)
+_POW_B = np.empty(_P_HIGH - _P_LOW + 1)
+for _p in range(_P_LOW, _P_HIGH + 1):
+    if _p > 300:  # 10**p itself would overflow (or lose digits) for subnormal values
+        _POW_A[_p - _P_LOW] = 1e30
+        _POW_B[_p - _P_LOW] = float(f"1e{_p - 30}")
+    else:
+        _POW_B[_p - _P_LOW] = float(f"1e{_p}")  # correctly rounded by the parser
+_TEN = 10 ** np.arange(19, dtype=np.int64)
+
+
+# ----------------------------------------------------------------------------------- floats
+
+def _emit(q, e, neg, skip):  # pragma: no cover - compiled
+    """The text of ``%.10g`` from ten digits ``q`` (1e9 <= q < 1e10) and decimal exponent
+    ``e`` (value = q * 10**(e - 9)), as one byte buffer and its offsets; skipped rows empty.
+
+    C's rule for %g with precision 10: exponent form when e < -4 or e >= 10, trailing zeros
+    (and a bare point) removed, the exponent signed and of at least two digits.
+    """
+    n = len(q)
+    out = np.empty(n * 18, dtype=np.uint8)
+    offsets = np.empty(n + 1, dtype=np.int32)
+    digits = np.empty(10, dtype=np.uint8)
+    pos = 0
+    offsets[0] = 0
+    for i in range(n):
+        if not skip[i]:
+            if neg[i]:
+                out[pos] = 45  # -
+                pos += 1
+            v = q[i]
+            for j in range(9, -1, -1):
+                digits[j] = 48 + v % 10
+                v //= 10
+            last = 9
+            while last > 0 and digits[last] == 48:
+                last -= 1
+            x = e[i]
+            if -4 <= x < 10:
+                if x >= 0:
+                    for j in range(x + 1):
+                        out[pos] = digits[j]
+                        pos += 1
+                    if last > x:
+                        out[pos] = 46  # .
+                        pos += 1
+                        for j in range(x + 1, last + 1):
+                            out[pos] = digits[j]
+                            pos += 1
+                else:
+                    out[pos] = 48
+                    out[pos + 1] = 46
+                    pos += 2
+                    for _ in range(-x - 1):
+                        out[pos] = 48
+                        pos += 1
+                    for j in range(last + 1):
+                        out[pos] = digits[j]
+                        pos += 1
+            else:
+                out[pos] = digits[0]
+                pos += 1
+                if last > 0:
+                    out[pos] = 46
+                    pos += 1
+                    for j in range(1, last + 1):
+                        out[pos] = digits[j]
+                        pos += 1
+                out[pos] = 101  # e
+                out[pos + 1] = 45 if x < 0 else 43
+                pos += 2
+                a = -x if x < 0 else x
+                if a >= 100:
+                    out[pos] = 48 + a // 100
+                    pos += 1
+                out[pos] = 48 + (a // 10) % 10
+                out[pos + 1] = 48 + a % 10
+                pos += 2
+        offsets[i + 1] = pos
+    return out[:pos], offsets
+
+
+@functools.cache
+def _emit_kernel():
+    import numba
+
+    return numba.njit(cache=True)(_emit)
+
+
+def _scaled(a: np.ndarray, e: np.ndarray) -> np.ndarray:
+    i = 9 - e - _P_LOW
+    return a * _POW_A[i] * _POW_B[i]
+
+
+def format_floats(x: np.ndarray) -> pa.Array:
+    """``"%.10g" % v`` for every value (NaN as an empty text), as a pyarrow string array."""
+    x = np.asarray(x, dtype=np.float64)  # float32 and float16 widen exactly, as '%' does
+    n = len(x)
+    a = np.abs(x)
+    regular = np.isfinite(x) & (a != 0)
+    safe = np.where(regular, a, 1.0)
+    with np.errstate(divide="ignore"):
+        e = np.floor(np.log10(safe)).astype(np.int64)
+    low, high = 1e9 - 0.05, 1e10 - 0.5  # the scaled value lies in [low, high) at the right e
+    s = _scaled(safe, e)
+    for _ in range(2):  # log10 can miss the decade by one near a power of ten
+        down, up = s < low, s >= high
+        if not (down.any() or up.any()):
+            break
+        e = e - down + up
+        s = np.where(down | up, _scaled(safe, e), s)
+    q = np.rint(s)
+    with np.errstate(invalid="ignore"):
+        unsure = ((s < low + _MARGIN) | (s >= high - _MARGIN) | ~np.isfinite(s)
+                  | (np.abs(s - q) > 0.5 - _MARGIN))
+    python = regular & unsure
+    q = np.where(python, 1e9, q).astype(np.int64)
+
+    special = ~regular | python
+    data, offsets = _emit_kernel()(q, e, np.signbit(x), special)
+    text = pa.StringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
+    if special.any():
+        where = np.flatnonzero(special)
+        values = [("" if v != v else FLOAT_FORMAT % v) for v in x[where].tolist()]
+        text = pc.replace_with_mask(text, pa.array(special), pa.array(values, pa.string()))
+    return text
+
+
+# ------------------------------------------------------------------------------ the columns
+
+def _is_text_dtype(dtype) -> bool:
+    return dtype.kind == "O" or str(dtype) in ("string", "str")
+
+
+def _text_array(col: pd.Series) -> pa.Array | str:
+    """The column's cells as a pyarrow string array (missing as null), or why not."""
+    values = col.to_numpy(dtype=object)
+    kind = pd.api.types.infer_dtype(values, skipna=True)
+    if kind not in ("string", "empty"):
+        return f"text column holds {kind} values"
+    missing = pd.isna(values)
+    if missing.any():  # every missing cell is written as pandas' na_rep, ""
+        values = values.copy()
+        values[missing] = None
+    try:
+        return pa.array(values, type=pa.string(), from_pandas=True)
+    except (pa.ArrowException, UnicodeError, TypeError, ValueError) as exc:
+        return f"text pyarrow cannot hold ({type(exc).__name__})"
+
+
+def _plan_column(col: pd.Series):
+    """(kind, prepared values) for one column, or a reason string."""
+    dtype = col.dtype
+    if isinstance(dtype, pd.CategoricalDtype):
+        return "categorical column"
+    if _is_text_dtype(dtype):
+        arr = _text_array(col)
+        return arr if isinstance(arr, str) else ("text", arr)
+    if isinstance(dtype, np.dtype):
+        if dtype.kind == "f":
+            return ("float", col.to_numpy())
+        if dtype.kind in "iu":
+            return ("int", col.to_numpy())
+        if dtype.kind == "b":
+            return ("bool", col.to_numpy())
+        return f"dtype {dtype}"
+    name = str(dtype)
+    if isinstance(dtype, pd.Float64Dtype | pd.Float32Dtype):
+        return ("float", col.to_numpy(dtype=np.float64, na_value=np.nan))
+    if isinstance(dtype, pd.core.arrays.integer.IntegerDtype):
+        return ("nullable-int", (col.isna().to_numpy(),
+                                 col.to_numpy(dtype=dtype.numpy_dtype, na_value=0)))
+    if isinstance(dtype, pd.BooleanDtype):
+        return ("nullable-bool", (col.isna().to_numpy(),
+                                  col.to_numpy(dtype=bool, na_value=False)))
+    return f"dtype {name}"
+
+
+class Plan:
+    """A table this module can write: the prepared columns and the quoting."""
+
+    def __init__(self, names: list[str], columns: list, quoting: int, rows: int):
+        self.names, self.columns, self.quoting, self.rows = names, columns, quoting, rows
+
+    def _cell_text(self, kind: str, values, lo: int, hi: int) -> pa.Array:
+        """One column's cells of rows [lo, hi) exactly as the csv writer prints them."""
+        nonnumeric = self.quoting == csv.QUOTE_NONNUMERIC
+        if kind == "float":  # pandas hands the writer formatted text: quoted when nonnumeric
+            text = format_floats(values[lo:hi])
+            return _wrap(text) if nonnumeric else text
+        if kind == "int":
+            return pc.cast(pa.array(values[lo:hi]), pa.string())
+        if kind == "bool":
+            return pc.if_else(pa.array(values[lo:hi]), "True", "False")
+        if kind in ("nullable-int", "nullable-bool"):
+            missing, data = values[0][lo:hi], values[1][lo:hi]
+            text = (pc.cast(pa.array(data), pa.string()) if kind == "nullable-int"
+                    else pc.if_else(pa.array(data), "True", "False"))
+            empty = '""' if nonnumeric else ""  # the missing cell is the text na_rep
+            return pc.if_else(pa.array(missing), empty, text)
+        if kind == "text":
+            return self._quote_text(values.slice(lo, hi - lo))
+        raise AssertionError(kind)
+
+    def _quote_text(self, text: pa.Array) -> pa.Array:
+        text = pc.fill_null(text, "")
+        if self.quoting == csv.QUOTE_NONNUMERIC:
+            return _wrap(pc.replace_substring(text, '"', '""'))
+        need = pc.match_substring_regex(text, _TRIGGER_PATTERN)
+        if not pc.any(need).as_py():
+            return text
+        quoted = _wrap(pc.replace_substring(text, '"', '""'))
+        return pc.if_else(need, quoted, text)
+
+    def _lines(self, cells: list[pa.Array]) -> pa.Array:
+        if len(cells) == 1 and self.quoting == csv.QUOTE_MINIMAL:
+            # the csv writer quotes a record that is one empty field: '""'
+            cells = [pc.if_else(pc.equal(cells[0], ""), '""', cells[0])]
+        return pc.binary_join_element_wise(pc.binary_join_element_wise(*cells, ","), "\n", "")
+
+    def header(self) -> bytes:
+        names = self._quote_text(pa.array(self.names, pa.string()))
+        line = self._lines([names.slice(i, 1) for i in range(len(names))])
+        return _bytes_of(line)
+
+    def chunks(self) -> Iterator[memoryview | bytes]:
+        yield self.header()
+        step = _chunk_rows(self)
+        for lo in range(0, self.rows, step):
+            hi = min(lo + step, self.rows)
+            cells = [self._cell_text(kind, values, lo, hi) for kind, values in self.columns]
+            yield _bytes_of(self._lines(cells))
+
+    def write(self, path: Path) -> None:
+        with open(path, "wb") as f:
+            for chunk in self.chunks():
+                f.write(chunk)
+
+    def encode(self) -> bytes:
+        return b"".join(bytes(c) for c in self.chunks())
+
+
+def _wrap(text: pa.Array) -> pa.Array:
+    return pc.binary_join_element_wise('"', text, '"', "")
+
+
+def _bytes_of(lines: pa.Array) -> memoryview:
+    """The concatenated text of a string array, without copying."""
+    if isinstance(lines, pa.ChunkedArray):
+        lines = lines.combine_chunks()
+    if len(lines) == 0:
+        return memoryview(b"")
+    offsets = lines.buffers()[1]
+    width = 8 if pa.types.is_large_string(lines.type) else 4
+    first, last = np.frombuffer(offsets, dtype=np.int64 if width == 8 else np.int32,
+                                count=lines.offset + len(lines) + 1)[[lines.offset, -1]]
+    return memoryview(lines.buffers()[2])[int(first):int(last)]
+
+
+def _chunk_rows(plan: Plan) -> int:
+    width = 2
+    for kind, values in plan.columns:
+        if kind == "text":
+            longest = pc.max(pc.binary_length(values)).as_py() or 0
+            width += 2 * longest + 3
+        else:
+            width += 28
+    return max(1, min(CHUNK_ROWS, _CHUNK_BYTES // width))
+
+
+def why_not(table: pd.DataFrame, quoting: int) -> str | None:
+    """Why this table is left to pandas (``None``: :func:`plan` can write it)."""
+    got = _plan(table, quoting)
+    return got if isinstance(got, str) else None
+
+
+def plan(table: pd.DataFrame, quoting: int) -> Plan | None:
+    """A :class:`Plan` that writes ``table.to_csv(index=False, float_format="%.10g",
+    quoting=quoting)``'s bytes, or ``None`` where this module does not handle the table."""
+    got = _plan(table, quoting)
+    return None if isinstance(got, str) else got
+
+
+def _plan(table: pd.DataFrame, quoting: int) -> Plan | str:
+    if quoting not in (csv.QUOTE_MINIMAL, csv.QUOTE_NONNUMERIC):
+        return f"quoting {quoting}"
+    if table.shape[1] == 0:
+        return "no columns"
+    if isinstance(table.columns, pd.MultiIndex):
+        return "column labels on several levels"
+    names = list(table.columns)
+    if not all(isinstance(c, str) for c in names):
+        return "a column label that is not text"
+    columns = []
+    for i, name in enumerate(names):
+        got = _plan_column(table.iloc[:, i])
+        if isinstance(got, str):
+            return f"column {name!r}: {got}"
+        columns.append(got)
+    try:
+        pa.array(names, pa.string())
+    except (pa.ArrowException, UnicodeError) as exc:
+        return f"a column label pyarrow cannot hold ({type(exc).__name__})"
+    return Plan([str(c) for c in names], columns, quoting, len(table))
