@@ -199,6 +199,11 @@ def _is_text_dtype(dtype) -> bool:
 
 def _text_array(col: pd.Series) -> pa.Array | str:
     """The column's cells as a pyarrow string array (missing as null), or why not."""
+    if isinstance(col.dtype, pd.StringDtype) and col.dtype.storage == "pyarrow":
+        text = pa.array(col.array)  # the column's own buffers: str cells, missing as null
+        if isinstance(text, pa.ChunkedArray):
+            text = text.combine_chunks()
+        return text
     values = col.to_numpy(dtype=object)
     kind = pd.api.types.infer_dtype(values, skipna=True)
     if kind not in ("string", "empty"):
@@ -268,7 +273,7 @@ class Plan:
         raise AssertionError(kind)
 
     def _quote_text(self, text: pa.Array) -> pa.Array:
-        text = pc.fill_null(text, "")
+        text = pc.fill_null(text.cast(pa.string()), "")  # a chunk holds < 2 GB (_chunk_rows)
         if self.quoting == csv.QUOTE_NONNUMERIC:
             return _wrap(pc.replace_substring(text, '"', '""'))
         need = pc.match_substring_regex(text, _TRIGGER_PATTERN)
@@ -277,24 +282,35 @@ class Plan:
         quoted = _wrap(pc.replace_substring(text, '"', '""'))
         return pc.if_else(need, quoted, text)
 
-    def _lines(self, cells: list[pa.Array]) -> pa.Array:
+    def _lines(self, cells: list[pa.Array]) -> np.ndarray:
+        """The rows' bytes: cells joined by ``,``, each row ended by ``\\n``."""
         if len(cells) == 1 and self.quoting == csv.QUOTE_MINIMAL:
             # the csv writer quotes a record that is one empty field: '""'
             cells = [pc.if_else(pc.equal(cells[0], ""), '""', cells[0])]
-        return pc.binary_join_element_wise(pc.binary_join_element_wise(*cells, ","), "\n", "")
+        parts = [_parts(c) for c in cells]
+        data = np.concatenate([d[o[0]:o[-1]] for d, o in parts])
+        offsets = np.empty((len(parts), len(cells[0]) + 1), dtype=np.int64)
+        base = 0
+        for j, (_, o) in enumerate(parts):
+            offsets[j] = o
+            offsets[j] += base - o[0]
+            base += int(o[-1] - o[0])
+        out = np.empty(len(data) + len(cells) * len(cells[0]), dtype=np.uint8)
+        _rows_kernel()(out, data, offsets)
+        return out
 
     def header(self) -> bytes:
         names = self._quote_text(pa.array(self.names, pa.string()))
         line = self._lines([names.slice(i, 1) for i in range(len(names))])
-        return _bytes_of(line)
+        return line.tobytes()
 
-    def chunks(self) -> Iterator[memoryview | bytes]:
+    def chunks(self) -> Iterator[np.ndarray | bytes]:
         yield self.header()
         step = _chunk_rows(self)
         for lo in range(0, self.rows, step):
             hi = min(lo + step, self.rows)
             cells = [self._cell_text(kind, values, lo, hi) for kind, values in self.columns]
-            yield _bytes_of(self._lines(cells))
+            yield self._lines(cells)
 
     def write(self, path: Path) -> None:
         with open(path, "wb") as f:
@@ -302,24 +318,49 @@ class Plan:
                 f.write(chunk)
 
     def encode(self) -> bytes:
-        return b"".join(bytes(c) for c in self.chunks())
+        return b"".join(memoryview(c) for c in self.chunks())
 
 
 def _wrap(text: pa.Array) -> pa.Array:
     return pc.binary_join_element_wise('"', text, '"', "")
 
 
-def _bytes_of(lines: pa.Array) -> memoryview:
-    """The concatenated text of a string array, without copying."""
-    if isinstance(lines, pa.ChunkedArray):
-        lines = lines.combine_chunks()
-    if len(lines) == 0:
-        return memoryview(b"")
-    offsets = lines.buffers()[1]
-    width = 8 if pa.types.is_large_string(lines.type) else 4
-    first, last = np.frombuffer(offsets, dtype=np.int64 if width == 8 else np.int32,
-                                count=lines.offset + len(lines) + 1)[[lines.offset, -1]]
-    return memoryview(lines.buffers()[2])[int(first):int(last)]
+def _parts(text: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """A string array's bytes and its len + 1 offsets into them, without copying."""
+    if isinstance(text, pa.ChunkedArray):
+        text = text.combine_chunks()
+    if text.null_count:
+        raise AssertionError("a cell without text")  # every kind fills its missing cells
+    wide = pa.types.is_large_string(text.type) or pa.types.is_large_binary(text.type)
+    buffers = text.buffers()
+    offsets = np.frombuffer(buffers[1], dtype=np.int64 if wide else np.int32,
+                            count=text.offset + len(text) + 1)[text.offset:]
+    data = (np.frombuffer(buffers[2], dtype=np.uint8) if buffers[2] is not None
+            else np.empty(0, dtype=np.uint8))
+    return data, offsets
+
+
+def _rows(out, data, offsets):  # pragma: no cover - compiled
+    """Row by row, each column's cell (bytes ``data[offsets[j, i]:offsets[j, i + 1]]``)
+    followed by ``,``, the last by ``\\n``, into ``out``."""
+    columns, rows = offsets.shape[0], offsets.shape[1] - 1
+    pos = 0
+    for i in range(rows):
+        for j in range(columns):
+            a = offsets[j, i]
+            b = offsets[j, i + 1]
+            for k in range(a, b):
+                out[pos] = data[k]
+                pos += 1
+            out[pos] = 10 if j == columns - 1 else 44
+            pos += 1
+
+
+@functools.cache
+def _rows_kernel():
+    import numba
+
+    return numba.njit(cache=True)(_rows)
 
 
 def _chunk_rows(plan: Plan) -> int:
