@@ -157,10 +157,10 @@ def _scaled(a: np.ndarray, e: np.ndarray) -> np.ndarray:
     return a * _POW_A[i] * _POW_B[i]
 
 
-def format_floats(x: np.ndarray) -> pa.Array:
-    """``"%.10g" % v`` for every value (NaN as an empty text), as a pyarrow string array."""
-    x = np.asarray(x, dtype=np.float64)  # float32 and float16 widen exactly, as '%' does
-    n = len(x)
+def _digits(x: np.ndarray):
+    """Ten correctly rounded digits ``q`` and decimal exponent ``e`` of each value, with the
+    masks ``regular`` (finite, not zero) and ``python`` (a regular value left to Python's %
+    because the scaled value lies within the margin of a rounding half or a decade's edge)."""
     a = np.abs(x)
     regular = np.isfinite(x) & (a != 0)
     safe = np.where(regular, a, 1.0)
@@ -179,8 +179,20 @@ def format_floats(x: np.ndarray) -> pa.Array:
         unsure = ((s < low + _MARGIN) | (s >= high - _MARGIN) | ~np.isfinite(s)
                   | (np.abs(s - q) > 0.5 - _MARGIN))
     python = regular & unsure
-    q = np.where(python, 1e9, q).astype(np.int64)
+    q = np.where(python | ~regular, 1e9, q).astype(np.int64)
+    return q, e, regular, python
 
+
+def python_formatted(x: np.ndarray) -> np.ndarray:
+    """Which finite non-zero values :func:`format_floats` leaves to Python's ``%``."""
+    return _digits(np.asarray(x, dtype=np.float64))[3]
+
+
+def format_floats(x: np.ndarray) -> pa.Array:
+    """``"%.10g" % v`` for every value (NaN as an empty text), as a pyarrow string array."""
+    x = np.asarray(x, dtype=np.float64)  # float32 and float16 widen exactly, as '%' does
+    n = len(x)
+    q, e, regular, python = _digits(x)
     special = ~regular | python
     data, offsets = _emit_kernel()(q, e, np.signbit(x), special)
     text = pa.StringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
