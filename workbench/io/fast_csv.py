@@ -75,21 +75,51 @@ _TEN = 10 ** np.arange(19, dtype=np.int64)
 
 # ----------------------------------------------------------------------------------- floats
 
-def _emit(q, e, neg, skip):  # pragma: no cover - compiled
-    """The text of ``%.10g`` from ten digits ``q`` (1e9 <= q < 1e10) and decimal exponent
-    ``e`` (value = q * 10**(e - 9)), as one byte buffer and its offsets; skipped rows empty.
+DIGITS, EMPTY, ZERO, INFINITE, GIVEN = 0, 1, 2, 3, 4  # what _emit writes for a value
 
-    C's rule for %g with precision 10: exponent form when e < -4 or e >= 10, trailing zeros
-    (and a bare point) removed, the exponent signed and of at least two digits.
+
+def _emit(q, e, neg, kind, given, given_offsets, quote):  # pragma: no cover - compiled
+    """The text of ``%.10g`` of each value, as one byte buffer and its offsets.
+
+    ``kind`` says what a value is written as: DIGITS (ten digits ``q``, 1e9 <= q < 1e10, and
+    decimal exponent ``e``: value = q * 10**(e - 9)), EMPTY (NaN), ZERO, INFINITE (``neg``
+    gives the sign), or GIVEN (the next text of ``given``, Python's own). ``quote`` puts
+    ``"`` around each. C's rule for %g with precision 10: exponent form when e < -4 or
+    e >= 10, trailing zeros (and a bare point) removed, the exponent signed and of at least
+    two digits.
     """
     n = len(q)
-    out = np.empty(n * 18, dtype=np.uint8)
+    out = np.empty(n * 20 + len(given), dtype=np.uint8)
     offsets = np.empty(n + 1, dtype=np.int32)
     digits = np.empty(10, dtype=np.uint8)
     pos = 0
+    g = 0
     offsets[0] = 0
     for i in range(n):
-        if not skip[i]:
+        if quote:
+            out[pos] = 34
+            pos += 1
+        c = kind[i]
+        if c == EMPTY:
+            pass
+        elif c == GIVEN:
+            for k in range(given_offsets[g], given_offsets[g + 1]):
+                out[pos] = given[k]
+                pos += 1
+            g += 1
+        elif c == ZERO or c == INFINITE:
+            if neg[i]:
+                out[pos] = 45
+                pos += 1
+            if c == ZERO:
+                out[pos] = 48
+                pos += 1
+            else:
+                out[pos] = 105  # inf
+                out[pos + 1] = 110
+                out[pos + 2] = 102
+                pos += 3
+        else:
             if neg[i]:
                 out[pos] = 45  # -
                 pos += 1
@@ -141,6 +171,9 @@ def _emit(q, e, neg, skip):  # pragma: no cover - compiled
                 out[pos] = 48 + (a // 10) % 10
                 out[pos + 1] = 48 + a % 10
                 pos += 2
+        if quote:
+            out[pos] = 34
+            pos += 1
         offsets[i + 1] = pos
     return out[:pos], offsets
 
@@ -188,19 +221,24 @@ def python_formatted(x: np.ndarray) -> np.ndarray:
     return _digits(np.asarray(x, dtype=np.float64))[3]
 
 
-def format_floats(x: np.ndarray) -> pa.Array:
-    """``"%.10g" % v`` for every value (NaN as an empty text), as a pyarrow string array."""
+def format_floats(x: np.ndarray, quote: bool = False) -> pa.Array:
+    """``"%.10g" % v`` for every value (NaN as an empty text), as a pyarrow string array;
+    with ``quote``, each in ``"``."""
     x = np.asarray(x, dtype=np.float64)  # float32 and float16 widen exactly, as '%' does
     n = len(x)
     q, e, regular, python = _digits(x)
-    special = ~regular | python
-    data, offsets = _emit_kernel()(q, e, np.signbit(x), special)
-    text = pa.StringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
-    if special.any():
-        where = np.flatnonzero(special)
-        values = [("" if v != v else FLOAT_FORMAT % v) for v in x[where].tolist()]
-        text = pc.replace_with_mask(text, pa.array(special), pa.array(values, pa.string()))
-    return text
+    kind = np.full(n, DIGITS, dtype=np.int8)
+    kind[np.isnan(x)] = EMPTY
+    kind[x == 0] = ZERO
+    kind[np.isinf(x)] = INFINITE
+    kind[python] = GIVEN
+    given = [FLOAT_FORMAT % v for v in x[python].tolist()]
+    given = pa.array(given, pa.string())
+    given_data, given_offsets = _parts(given) if len(given) else (
+        np.zeros(1, np.uint8), np.zeros(1, np.int32))
+    data, offsets = _emit_kernel()(q, e, np.signbit(x), kind, given_data,
+                                   given_offsets.astype(np.int64), quote)
+    return pa.StringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
 
 
 # ------------------------------------------------------------------------------ the columns
@@ -268,8 +306,7 @@ class Plan:
         """One column's cells of rows [lo, hi) exactly as the csv writer prints them."""
         nonnumeric = self.quoting == csv.QUOTE_NONNUMERIC
         if kind == "float":  # pandas hands the writer formatted text: quoted when nonnumeric
-            text = format_floats(values[lo:hi])
-            return _wrap(text) if nonnumeric else text
+            return format_floats(values[lo:hi], quote=nonnumeric)
         if kind == "int":
             return pc.cast(pa.array(values[lo:hi]), pa.string())
         if kind == "bool":
@@ -300,16 +337,18 @@ class Plan:
             # the csv writer quotes a record that is one empty field: '""'
             cells = [pc.if_else(pc.equal(cells[0], ""), '""', cells[0])]
         parts = [_parts(c) for c in cells]
-        data = np.concatenate([d[o[0]:o[-1]] for d, o in parts])
+        # 16 spare bytes after the data and the output: _rows copies short cells 16 at a time
+        data = np.concatenate([d[o[0]:o[-1]] for d, o in parts] + [np.zeros(16, np.uint8)])
         offsets = np.empty((len(parts), len(cells[0]) + 1), dtype=np.int64)
         base = 0
         for j, (_, o) in enumerate(parts):
             offsets[j] = o
             offsets[j] += base - o[0]
             base += int(o[-1] - o[0])
-        out = np.empty(len(data) + len(cells) * len(cells[0]), dtype=np.uint8)
+        size = len(data) - 16 + len(cells) * len(cells[0])
+        out = np.empty(size + 16, dtype=np.uint8)
         _rows_kernel()(out, data, offsets)
-        return out
+        return out[:size]
 
     def header(self) -> bytes:
         names = self._quote_text(pa.array(self.names, pa.string()))
@@ -354,16 +393,24 @@ def _parts(text: pa.Array) -> tuple[np.ndarray, np.ndarray]:
 
 def _rows(out, data, offsets):  # pragma: no cover - compiled
     """Row by row, each column's cell (bytes ``data[offsets[j, i]:offsets[j, i + 1]]``)
-    followed by ``,``, the last by ``\\n``, into ``out``."""
+    followed by ``,``, the last by ``\\n``, into ``out``.
+
+    A cell of up to 16 bytes is copied as 16 (a fixed-length copy the compiler unrolls): the
+    bytes past its end are overwritten by what follows, and both buffers have 16 to spare.
+    """
     columns, rows = offsets.shape[0], offsets.shape[1] - 1
     pos = 0
     for i in range(rows):
         for j in range(columns):
             a = offsets[j, i]
-            b = offsets[j, i + 1]
-            for k in range(a, b):
-                out[pos] = data[k]
-                pos += 1
+            size = offsets[j, i + 1] - a
+            if size <= 16:
+                for k in range(16):
+                    out[pos + k] = data[a + k]
+            else:
+                for k in range(size):
+                    out[pos + k] = data[a + k]
+            pos += size
             out[pos] = 10 if j == columns - 1 else 44
             pos += 1
 
