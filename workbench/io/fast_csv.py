@@ -123,10 +123,10 @@ def _emit(q, e, neg, kind, given, given_offsets, quote):  # pragma: no cover - c
             if neg[i]:
                 out[pos] = 45  # -
                 pos += 1
-            v = q[i]
+            v = np.uint64(q[i])  # unsigned: division by ten without a sign correction
             for j in range(9, -1, -1):
-                digits[j] = 48 + v % 10
-                v //= 10
+                digits[j] = np.uint8(48 + v % np.uint64(10))
+                v //= np.uint64(10)
             last = 9
             while last > 0 and digits[last] == 48:
                 last -= 1
@@ -185,40 +185,73 @@ def _emit_kernel():
     return numba.njit(cache=True)(_emit)
 
 
-def _scaled(a: np.ndarray, e: np.ndarray) -> np.ndarray:
-    i = 9 - e - _P_LOW
-    return a * _POW_A[i] * _POW_B[i]
+def _classify(x, pow_a, pow_b, p_low, margin):  # pragma: no cover - compiled
+    """Each value's kind for :func:`_emit`, and for DIGITS its ten correctly rounded digits
+    ``q`` and decimal exponent ``e``.
+
+    A finite non-zero value is scaled to s = |x| * 10**(9 - e), which must lie in
+    [1e9 - 0.05, 1e10 - 0.5) (the range whose rounding keeps exponent e; log10 may miss the
+    decade by one, so e moves until it does). q = rint(s) is the correctly rounded integer
+    when s lies more than ``margin`` from a half: s carries at most four roundings (two
+    constants, two products), a relative error below 5e-16, so below 5e-6 here. A value
+    within the margin of a half or of the range's ends is GIVEN: Python's % formats it.
+    """
+    n = len(x)
+    q = np.full(n, 1_000_000_000, dtype=np.int64)
+    e = np.zeros(n, dtype=np.int64)
+    kind = np.empty(n, dtype=np.int8)
+    low = 1e9 - 0.05
+    high = 1e10 - 0.5
+    for i in range(n):
+        v = x[i]
+        if v != v:
+            kind[i] = EMPTY
+            continue
+        a = abs(v)
+        if a == 0.0:
+            kind[i] = ZERO
+            continue
+        if a == np.inf:
+            kind[i] = INFINITE
+            continue
+        ex = int(np.floor(np.log10(a)))
+        k = 9 - ex - p_low
+        s = a * pow_a[k] * pow_b[k]
+        for _ in range(2):
+            if s < low:
+                ex -= 1
+            elif s >= high:
+                ex += 1
+            else:
+                break
+            k = 9 - ex - p_low
+            s = a * pow_a[k] * pow_b[k]
+        r = np.rint(s)
+        if (s < low + margin or s >= high - margin or not np.isfinite(s)
+                or abs(s - r) > 0.5 - margin):
+            kind[i] = GIVEN
+            continue
+        kind[i] = DIGITS
+        q[i] = np.int64(r)
+        e[i] = ex
+    return q, e, kind
+
+
+@functools.cache
+def _classify_kernel():
+    import numba
+
+    return numba.njit(cache=True)(_classify)
 
 
 def _digits(x: np.ndarray):
-    """Ten correctly rounded digits ``q`` and decimal exponent ``e`` of each value, with the
-    masks ``regular`` (finite, not zero) and ``python`` (a regular value left to Python's %
-    because the scaled value lies within the margin of a rounding half or a decade's edge)."""
-    a = np.abs(x)
-    regular = np.isfinite(x) & (a != 0)
-    safe = np.where(regular, a, 1.0)
-    with np.errstate(divide="ignore"):
-        e = np.floor(np.log10(safe)).astype(np.int64)
-    low, high = 1e9 - 0.05, 1e10 - 0.5  # the scaled value lies in [low, high) at the right e
-    s = _scaled(safe, e)
-    for _ in range(2):  # log10 can miss the decade by one near a power of ten
-        down, up = s < low, s >= high
-        if not (down.any() or up.any()):
-            break
-        e = e - down + up
-        s = np.where(down | up, _scaled(safe, e), s)
-    q = np.rint(s)
-    with np.errstate(invalid="ignore"):
-        unsure = ((s < low + _MARGIN) | (s >= high - _MARGIN) | ~np.isfinite(s)
-                  | (np.abs(s - q) > 0.5 - _MARGIN))
-    python = regular & unsure
-    q = np.where(python | ~regular, 1e9, q).astype(np.int64)
-    return q, e, regular, python
+    """(q, e, kind) of :func:`_classify` for float64 values."""
+    return _classify_kernel()(x, _POW_A, _POW_B, _P_LOW, _MARGIN)
 
 
 def python_formatted(x: np.ndarray) -> np.ndarray:
-    """Which finite non-zero values :func:`format_floats` leaves to Python's ``%``."""
-    return _digits(np.asarray(x, dtype=np.float64))[3]
+    """Which values :func:`format_floats` leaves to Python's ``%``."""
+    return _digits(np.asarray(x, dtype=np.float64))[2] == GIVEN
 
 
 def format_floats(x: np.ndarray, quote: bool = False) -> pa.Array:
@@ -226,13 +259,8 @@ def format_floats(x: np.ndarray, quote: bool = False) -> pa.Array:
     with ``quote``, each in ``"``."""
     x = np.asarray(x, dtype=np.float64)  # float32 and float16 widen exactly, as '%' does
     n = len(x)
-    q, e, regular, python = _digits(x)
-    kind = np.full(n, DIGITS, dtype=np.int8)
-    kind[np.isnan(x)] = EMPTY
-    kind[x == 0] = ZERO
-    kind[np.isinf(x)] = INFINITE
-    kind[python] = GIVEN
-    given = [FLOAT_FORMAT % v for v in x[python].tolist()]
+    q, e, kind = _digits(x)
+    given = [FLOAT_FORMAT % v for v in x[kind == GIVEN].tolist()]
     given = pa.array(given, pa.string())
     given_data, given_offsets = _parts(given) if len(given) else (
         np.zeros(1, np.uint8), np.zeros(1, np.int32))
