@@ -2,18 +2,21 @@
 
 :func:`workbench.io.atomic.write_csv` writes with ``DataFrame.to_csv(index=False,
 float_format="%.10g", quoting=...)``. On a million rows most of that time is Python's
-``"%.10g" % value`` for each float. This module builds the same text column by column with
-NumPy and pyarrow's compute kernels:
+``"%.10g" % value`` for each float. This module builds the same text in chunks of rows with
+three small compiled kernels (numba) and pyarrow's string kernels:
 
-* floats: the ten significant digits come from one scaled multiplication, rounded; a value
-  whose scaled fraction lies too near a half (where the rounding could go either way) or whose
-  decimal exponent is unsure, is formatted by Python's own ``%`` instead. The bound: the scaled
-  value carries at most four roundings (two constants, two products: relative error below
-  5e-16, so below 5e-6 on a ten-digit integer), far inside the margin of 1e-4 kept from every
-  half, so the integer kept is the correctly rounded one (ties never pass the margin);
+* floats (:func:`_classify`, :func:`_emit`): the ten significant digits come from one scaled
+  product, rounded; a value whose scaled fraction lies too near a half (where the rounding
+  could go either way) or whose decimal exponent is unsure is formatted by Python's own
+  ``%`` instead (about 2 values in 10,000). The bound: the scaled value carries at most four
+  roundings (two constants, two products: relative error below 5e-16, so below 5e-6 on a
+  ten-digit integer), far inside the margin of 1e-4 kept from every half, so the integer
+  kept is the correctly rounded one and a tie never passes the margin;
 * ints, bools, nullable ints and bools, text (``str`` dtype, or object columns holding only
   ``str`` and missing values), quoted by the standard library's ``csv`` rules as pandas uses
-  them (QUOTE_MINIMAL or QUOTE_NONNUMERIC, line end ``\\n``).
+  them (QUOTE_MINIMAL or QUOTE_NONNUMERIC, line end ``\\n``; the characters that make the
+  csv module quote are asked of it at import);
+* rows (:func:`_rows`): each row's cells joined by ``,`` and ended by ``\\n``.
 
 Anything else (dates, categoricals, complex, object columns holding other objects, column
 labels that are not text, no columns, text pyarrow cannot hold) is declined:
