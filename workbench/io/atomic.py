@@ -116,12 +116,39 @@ def restore(value: object) -> object:
     return value
 
 
+#: what :func:`_needs_guard` finds, as a regular expression: guards, then a formula start
+_GUARD_PATTERN = "^" + FORMULA_GUARD + "*[" + "".join(
+    "\\" + c if c in "\\]^-[" else c for c in FORMULA_STARTS) + "]"
+
+
+def _arrow_text(col: pd.Series):
+    """A pyarrow-backed text column's cells as a pyarrow array (else ``None``)."""
+    if isinstance(col.dtype, pd.StringDtype) and col.dtype.storage == "pyarrow":
+        import pyarrow as pa
+
+        return pa.array(col.array)
+    return None
+
+
+def _none_match(col: pd.Series, pattern: str) -> bool:
+    """True when the column is pyarrow-backed text and no cell matches ``pattern``; False
+    means "look cell by cell" (a match, or a column this shortcut does not read)."""
+    text = _arrow_text(col)
+    if text is None:
+        return False
+    import pyarrow.compute as pc
+
+    return not pc.any(pc.match_substring_regex(text, pattern)).as_py()
+
+
 def safe_for_spreadsheets(table: pd.DataFrame) -> pd.DataFrame:
     """The table with every text cell neutralised (a copy only when something changes)."""
     columns = {}
     for name in table.columns:
         col = table[name]
         if col.dtype.kind == "O" or str(col.dtype) in ("string", "str"):
+            if _none_match(col, _GUARD_PATTERN):
+                continue  # the cell-by-cell test below would find nothing either
             values = col.to_numpy(dtype=object)
             if any(isinstance(v, str) and _needs_guard(v) for v in values):
                 columns[name] = pd.Series([neutralise(v) for v in values], index=col.index,
@@ -143,8 +170,24 @@ def write_csv(path: Path, table: pd.DataFrame) -> None:
     # a carriage return inside a cell is not quoted by the minimal rule (the line ends are
     # "\n"), which would split the row for every reader: such files quote all text cells
     quoting = csv.QUOTE_NONNUMERIC if _has_carriage_return(safe) else csv.QUOTE_MINIMAL
-    write_atomic(path, lambda p: safe.to_csv(p, index=False, float_format="%.10g",
-                                             quoting=quoting))
+    write_atomic(path, csv_writer(safe, quoting))
+
+
+#: tables with fewer rows keep pandas' writer (fast enough there, and no compiled kernel)
+FAST_CSV_MIN_ROWS = 20_000
+
+
+def csv_writer(table: pd.DataFrame, quoting: int) -> Callable[[Path], None]:
+    """What writes ``table`` as ``table.to_csv(index=False, float_format="%.10g",
+    quoting=quoting)`` would: :mod:`workbench.io.fast_csv` (same bytes) for a long table it
+    handles, pandas itself for the rest."""
+    if len(table) >= FAST_CSV_MIN_ROWS:
+        from . import fast_csv
+
+        plan = fast_csv.plan(table, quoting)
+        if plan is not None:
+            return plan.write
+    return lambda p: table.to_csv(p, index=False, float_format="%.10g", quoting=quoting)
 
 
 def _has_carriage_return(table: pd.DataFrame) -> bool:
@@ -153,6 +196,8 @@ def _has_carriage_return(table: pd.DataFrame) -> bool:
     for name in table.columns:
         col = table[name]
         if col.dtype.kind == "O" or str(col.dtype) in ("string", "str"):
+            if _none_match(col, "\r"):
+                continue
             if any(isinstance(v, str) and "\r" in v for v in col.to_numpy(dtype=object)):
                 return True
     return False
