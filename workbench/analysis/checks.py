@@ -94,11 +94,12 @@ from .settings import seed_of as _seed
 #: from the fitted population), the last two use the group's own rate.
 STATISTICS: dict[str, str] = {
     "dispersion": "mean over groups of z_j^2, z_j = (y_j - E_j) / S_j with E_j, S_j the mean and"
-    " sd of a new group's successes in trials_j under the fitted population",
+    " sd of a new group's successes in trials_j under the fitted population (from the"
+    " replicates other than the one compared; S_j = 1 where they are all equal)",
     "tail_share": "share of groups outside the central 95% of their own predictive"
-    " (mid-p tail area below 0.025 or above 0.975)",
+    " (mid-p tail area below 0.025 or above 0.975, against the other replicates)",
     "central_share": "share of groups inside the central 50% of their own predictive"
-    " (mid-p tail area between 0.25 and 0.75)",
+    " (mid-p tail area between 0.25 and 0.75, against the other replicates)",
     "zero_success_groups": "number of groups with trials > 0 and no successes",
     "chi_square": "sum_j (y_j - n_j theta_j)^2 / (n_j theta_j (1 - theta_j)), same theta draw"
     " for observed and replicated",
@@ -113,21 +114,56 @@ CENTRAL = (0.25, 0.75)
 
 
 def _mid_tail_areas(y_obs: np.ndarray, y_rep: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mid-p tail areas of each observed and each replicated count within its own group.
+    """Mid-p tail areas, per draw, of each observed count and of each replicate.
 
-    ``y_rep`` is (groups, draws) of whole numbers; the reference of group j is its row.
-    Observed: ``P(Y < y) + 0.5 P(Y = y)`` over the row; a replicate: the same over the
-    row's *other* replicates, read from the row sorted (a run of equal values at sorted
-    positions first..last has first values below it and last - first others equal to it).
+    ``y_rep`` is (groups, draws) of whole numbers; the reference of group j is its row. At
+    draw d both the observed count and the replicate d are compared with the row's *other*
+    replicates: ``P(Y < y) + 0.5 P(Y = y)`` over those s - 1 values. The same reference for
+    both keeps them exchangeable when the data come from the model (comparing the observed
+    count with all s values but a replicate with s - 1 biases their difference by about 1 / s,
+    which a million groups turn into a false misfit). Both are (groups, draws); the
+    replicates' are read from the row sorted (a run of equal values at sorted positions
+    first..last has first values below it and last - first others equal to it).
     """
     g, s = y_rep.shape
     column = y_obs[:, None]
-    observed = ((y_rep < column).sum(axis=1) + 0.5 * (y_rep == column).sum(axis=1)) / s
+    below, equal = y_rep < column, y_rep == column
+    others = max(s - 1, 1)
+    observed = ((below.sum(axis=1, keepdims=True) - below)
+                + 0.5 * (equal.sum(axis=1, keepdims=True) - equal)) / others
     order = np.argsort(y_rep, axis=1)
     first, last = tied_runs(np.take_along_axis(y_rep, order, axis=1))
     replicated = np.empty((g, s))
-    np.put_along_axis(replicated, order, (first + 0.5 * (last - first)) / max(s - 1, 1), axis=1)
+    np.put_along_axis(replicated, order, (first + 0.5 * (last - first)) / others, axis=1)
     return observed, replicated
+
+
+def _standardised_squares(y_obs: np.ndarray, y_rep: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """z^2 per draw of each observed count and each replicate, (groups, draws).
+
+    At draw d both are standardised by the mean and sd (ddof 0) of the row's other s - 1
+    replicates, for the reason :func:`_mid_tail_areas` gives. Where those are all equal there
+    is no spread to divide by: z is then the plain difference (at least 1 for whole numbers
+    that differ). Leave-one-out moments come from the row's centred sums.
+    """
+    g, s = y_rep.shape
+    others = max(s - 1, 1)
+    mean = y_rep.mean(axis=1, keepdims=True)
+    dev = y_rep - mean
+    total = (dev**2).sum(axis=1, keepdims=True)
+    centre = mean - dev / others
+    var = np.maximum((total - dev**2) / others - (dev / others) ** 2, 0.0)
+    # the others are all equal: the row is constant, or it holds two values and replicate d
+    # is the only one with its value (exact, from counts, not from a rounded variance)
+    low = y_rep.min(axis=1, keepdims=True)
+    high = y_rep.max(axis=1, keepdims=True)
+    at_low, at_high = y_rep == low, y_rep == high
+    n_low = at_low.sum(axis=1, keepdims=True)
+    n_high = at_high.sum(axis=1, keepdims=True)
+    two_valued = (low < high) & (n_low + n_high == s)
+    flat = (low == high) | (two_valued & ((at_low & (n_low == 1)) | (at_high & (n_high == 1))))
+    spread = np.where(flat, 1.0, np.sqrt(var))
+    return ((y_obs[:, None] - centre) / spread) ** 2, ((y_rep - centre) / spread) ** 2
 
 
 def replicate_statistics(
@@ -137,7 +173,8 @@ def replicate_statistics(
 
     Returns the long table (columns ``statistic, draw, observed, replicated``; ``draw`` is the
     position of the posterior draw used, chains stacked: ``chain * draws_per_chain + draw``)
-    and the observed values (for ``chi_square`` the mean realised value over the draws).
+    and the observed values (for ``chi_square`` and the three statistics against a new group's
+    replicates, which are realised at each draw, their mean over the draws).
 
     Two kinds of replicate: ``y_rep_j ~ Binomial(n_j, theta_j)`` with the group's own rate
     (``zero_success_groups``, ``chi_square``), and a new group's successes in ``n_j`` trials
@@ -159,14 +196,12 @@ def replicate_statistics(
     zeros = np.zeros(s)
     chi_rep = np.zeros(s)
     chi_obs = np.zeros(s)
-    z2_obs = 0.0
-    z2_rep = np.zeros(s)
-    tail_obs = 0.0
-    tail_rep = np.zeros(s)
-    central_obs = 0.0
-    central_rep = np.zeros(s)
-    # no pooling claims no population: its groups are checked against their own rates only
-    population = attr(idata, "model") != "no-pooling"
+    # per draw, observed and replicated: dispersion, tail_share, central_share (sums)
+    sums = {name: (np.zeros(s), np.zeros(s)) for name in ("dispersion", "tail_share",
+                                                          "central_share")}
+    # no pooling claims no population: its groups are checked against their own rates only;
+    # a replicate's reference is the other replicates, so there must be at least two others
+    population = attr(idata, "model") != "no-pooling" and s >= 3
     for cols in column_chunks(np.arange(m), s, settings.chunk_cells):
         th = theta[np.ix_(draws, seen[cols])]
         n = n_all[cols]
@@ -182,31 +217,19 @@ def replicate_statistics(
         if fresh is None:
             population = False
             continue
-        centre = fresh.mean(axis=1, keepdims=True)
-        spread = fresh.std(axis=1, keepdims=True)
-        flat = spread <= 0  # a predictive with one value: no spread to standardise by
-        spread = np.where(flat, 1.0, spread)
-        z_obs = (y[:, None] - centre) / spread
-        z_rep = (fresh - centre) / spread
-        z_obs = np.where(flat & (z_obs != 0), np.inf, z_obs)
-        z2_obs += float((z_obs**2).sum())
-        z2_rep += (z_rep**2).sum(axis=0)
-        p_obs, p_rep = _mid_tail_areas(y, fresh)
-        tail_obs += float(((p_obs < TAIL) | (p_obs > 1 - TAIL)).sum())
-        tail_rep += ((p_rep < TAIL) | (p_rep > 1 - TAIL)).sum(axis=0)
-        central_obs += float(((p_obs >= CENTRAL[0]) & (p_obs <= CENTRAL[1])).sum())
-        central_rep += ((p_rep >= CENTRAL[0]) & (p_rep <= CENTRAL[1])).sum(axis=0)
-    observed = {
-        "zero_success_groups": float(np.sum(y_all == 0)),
-        "chi_square": float(chi_obs.mean()),
-    }
+        for k, z2 in enumerate(_standardised_squares(y, fresh)):
+            sums["dispersion"][k][:] += z2.sum(axis=0)
+        for k, p in enumerate(_mid_tail_areas(y, fresh)):
+            sums["tail_share"][k][:] += ((p < TAIL) | (p > 1 - TAIL)).sum(axis=0)
+            sums["central_share"][k][:] += ((p >= CENTRAL[0]) & (p <= CENTRAL[1])).sum(axis=0)
+    per_draw_observed = {"chi_square": chi_obs}
     replicated = {"zero_success_groups": zeros, "chi_square": chi_rep}
     if population:
-        observed.update(dispersion=z2_obs / m, tail_share=tail_obs / m,
-                        central_share=central_obs / m)
-        replicated.update(dispersion=z2_rep / m, tail_share=tail_rep / m,
-                          central_share=central_rep / m)
-    per_draw_observed = {"chi_square": chi_obs}
+        for name, (obs, rep) in sums.items():
+            per_draw_observed[name] = obs / m
+            replicated[name] = rep / m
+    observed = {name: float(value.mean()) for name, value in per_draw_observed.items()}
+    observed["zero_success_groups"] = float(np.sum(y_all == 0))
     frames = []
     for name in STATISTICS:
         if name not in replicated:

@@ -135,16 +135,72 @@ def test_tail_areas_match_a_direct_count():
     y_rep = rng.integers(0, 6, size=(7, 50)).astype(float)
     y_obs = rng.integers(0, 6, size=7).astype(float)
     obs, rep = ppc._mid_tail_areas(y_obs, y_rep)
-    want = (y_rep < y_obs[:, None]).mean(1) + 0.5 * (y_rep == y_obs[:, None]).mean(1)
-    np.testing.assert_allclose(obs, want)
     j, i = 3, 17
     others = np.delete(y_rep[j], i)
     v = y_rep[j, i]
     assert rep[j, i] == pytest.approx((others < v).mean() + 0.5 * (others == v).mean())
-    # every replicate: counts over the row's other 49 (a value equals itself once)
+    assert obs[j, i] == pytest.approx((others < y_obs[j]).mean()
+                                      + 0.5 * (others == y_obs[j]).mean())
+    # every draw: counts over the row's other 49 replicates (a value equals itself once)
     value, other = y_rep[:, :, None], y_rep[:, None, :]
     want_rep = ((value > other).sum(-1) + 0.5 * ((value == other).sum(-1) - 1)) / 49
     np.testing.assert_allclose(rep, want_rep)
+    less = (y_rep < y_obs[:, None]).sum(1, keepdims=True) - (y_rep < y_obs[:, None])
+    same = (y_rep == y_obs[:, None]).sum(1, keepdims=True) - (y_rep == y_obs[:, None])
+    np.testing.assert_allclose(obs, (less + 0.5 * same) / 49)
+
+
+def test_standardised_squares_use_the_other_replicates_moments():
+    # direct: numpy's mean and std (ddof 0) of the row with replicate d deleted; rows with
+    # one value, and rows where one replicate alone differs, take z as the plain difference
+    rng = np.random.default_rng(9)
+    y_rep = rng.integers(0, 5, size=(6, 12)).astype(float)
+    y_rep[0] = 2.0  # constant
+    y_rep[1] = 0.0
+    y_rep[1, 4] = 3.0  # the others of draw 4 are all equal; every other draw's are not
+    y_obs = np.array([2.0, 1.0, 0.0, 4.0, 3.0, 1.0])
+    z2_obs, z2_rep = ppc._standardised_squares(y_obs, y_rep)
+    for j in range(6):
+        for d in range(12):
+            rest = np.delete(y_rep[j], d)
+            sd = rest.std() if rest.std() > 0 else 1.0
+            assert z2_obs[j, d] == pytest.approx(((y_obs[j] - rest.mean()) / sd) ** 2)
+            assert z2_rep[j, d] == pytest.approx(((y_rep[j, d] - rest.mean()) / sd) ** 2)
+
+
+def test_population_statistics_are_unbiased_when_the_data_are_replicates():
+    # Simulation with known truth: each group's observed count and its 50 replicates are
+    # independent draws of one distribution, so observed and replicated statistics are
+    # exchangeable at every draw and their mean difference is zero. Comparing the observed
+    # count with all 50 replicates but each replicate with its 49 others (as before) biased
+    # the dispersion by about 3 / 50 and read a false misfit at many groups.
+    rng = np.random.default_rng(12)
+    g, s = 40_000, 50
+    n = rng.integers(1, 30, size=g)
+    rate = rng.beta(3, 12, size=(g, s + 1))
+    counts = rng.binomial(n[:, None], rate).astype(float)
+    y_obs, y_rep = counts[:, 0], counts[:, 1:]
+    z2_obs, z2_rep = ppc._standardised_squares(y_obs, y_rep)
+    p_obs, p_rep = ppc._mid_tail_areas(y_obs, y_rep)
+
+    def bias_in_se(obs, rep):
+        # groups are independent: the mean over groups of each group's mean difference over
+        # draws, in units of its standard error
+        a = (np.asarray(obs, dtype=float) - rep).mean(axis=1)
+        return a.mean() / (a.std(ddof=1) / np.sqrt(len(a)))
+
+    central = (0.25, 0.75)
+    for obs, rep in ((z2_obs, z2_rep), (p_obs, p_rep),
+                     (p_obs < ppc.TAIL, p_rep < ppc.TAIL),
+                     ((p_obs >= central[0]) & (p_obs <= central[1]),
+                      (p_rep >= central[0]) & (p_rep <= central[1]))):
+        assert abs(bias_in_se(obs, rep)) < 4
+    # the check can fail: moments from all 50 replicates for the observed count (as before)
+    centre, sd = y_rep.mean(axis=1, keepdims=True), y_rep.std(axis=1, keepdims=True)
+    ok = sd[:, 0] > 0
+    old_obs = ((y_obs[:, None] - centre) / np.where(sd > 0, sd, 1.0)) ** 2
+    old_rep = ((y_rep - centre) / np.where(sd > 0, sd, 1.0)) ** 2
+    assert bias_in_se(old_obs[ok], old_rep[ok]) > 4
 
 
 def test_observed_statistics_are_the_data_own(spread, spread_checks):
