@@ -22,6 +22,7 @@ from ._posterior import (
     add_log_likelihood,
     attr,
     counts_of,
+    draw_quantiles,
     log_likelihood_arrays,
     theta_draws,
     versions,
@@ -60,5 +61,6 @@ __all__ = [
     "log_likelihood_arrays",
     "make_model",
     "theta_draws",
+    "draw_quantiles",
     "versions",
 ]

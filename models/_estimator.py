@@ -10,7 +10,13 @@ import numpy as np
 import pandas as pd
 
 from ._data import GroupCounts
-from ._posterior import add_log_likelihood, make_idata
+from ._posterior import (
+    add_log_likelihood,
+    draw_quantiles,
+    draw_share_above,
+    make_idata,
+    theta_draws,
+)
 from .exceptions import NotFittedError, ParameterError
 
 #: Columns of summary(), in order; later tables append their own.
@@ -177,9 +183,8 @@ class _Estimator:
             mean = exact.mean()
             median, lower, upper = exact.ppf(0.5), exact.ppf(lo_q), exact.ppf(hi_q)
         else:
-            th = self.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
-            mean = exact.mean() if exact is not None else th.mean(axis=1)
-            lower, median, upper = np.quantile(th, [lo_q, 0.5, hi_q], axis=1)
+            mean = exact.mean() if exact is not None else theta_draws(self.idata_).mean(axis=0)
+            lower, median, upper = draw_quantiles(self.idata_, [lo_q, 0.5, hi_q])
         table = pd.DataFrame(
             {
                 "group": data.names.astype(str),
@@ -198,8 +203,7 @@ class _Estimator:
             if exact is not None:
                 above = exact.sf(target)
             else:
-                th = self.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
-                above = (th > target).mean(axis=1)
+                above = draw_share_above(self.idata_, target)
             table["prob_above_target"] = np.clip(above, 0.0, 1.0)
         return table
 

@@ -155,6 +155,32 @@ def theta_draws(idata: az.InferenceData) -> np.ndarray:
     return th.reshape(-1, th.shape[-1])
 
 
+#: most draws x groups values :func:`draw_quantiles` copies at once
+QUANTILE_CHUNK_CELLS = 4_000_000
+
+
+def draw_quantiles(idata: az.InferenceData, probs) -> np.ndarray:
+    """Each group's quantiles of its theta draws (numpy's default linear method),
+    (len(probs), groups), by chunks of groups: never a sorted copy of every draw."""
+    th = theta_draws(idata)
+    probs = np.asarray(probs, dtype=float)
+    out = np.empty((len(probs), th.shape[1]))
+    step = max(1, QUANTILE_CHUNK_CELLS // max(th.shape[0], 1))
+    for start in range(0, th.shape[1], step):
+        out[:, start : start + step] = np.quantile(th[:, start : start + step], probs, axis=0)
+    return out
+
+
+def draw_share_above(idata: az.InferenceData, value: float) -> np.ndarray:
+    """Each group's share of theta draws above ``value``, by chunks of groups."""
+    th = theta_draws(idata)
+    out = np.empty(th.shape[1])
+    step = max(1, QUANTILE_CHUNK_CELLS // max(th.shape[0], 1))
+    for start in range(0, th.shape[1], step):
+        out[start : start + step] = (th[:, start : start + step] > value).mean(axis=0)
+    return out
+
+
 def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
     """Conditional (``y``) and group-integrated (``y_group``) log-likelihood, (chain, draw, group).
 

@@ -210,3 +210,28 @@ def test_group_integrated_log_likelihood_is_scipy_betabinom_for_every_group():
     want = stats.betabinom.logpmf(y, n, mu * kappa, (1 - mu) * kappa)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
     assert got.shape == (2, 50, 300) and len(set(zip(y, n, strict=True))) < 40
+
+
+def test_intervals_from_draws_are_numpy_quantiles_by_chunks_of_groups(monkeypatch):
+    # where exact quantiles would cost too much the summary reads the draws; reference:
+    # numpy.quantile over every group's stacked draws at once (as the summary did before it
+    # worked by chunks of groups)
+    from workbench.models import _mixture, _posterior
+
+    monkeypatch.setattr(_mixture, "EXACT_QUANTILE_CELLS", 0)
+    monkeypatch.setattr(_posterior, "QUANTILE_CHUNK_CELLS", 7 * 200)  # 7 groups a chunk
+    rng = np.random.default_rng(3)
+    n = rng.integers(5, 60, 30)
+    model = BetaBinomial(random_seed=2, draws=100, chains=2).fit(
+        GroupCounts([f"k{i}" for i in range(30)], rng.binomial(n, 0.4), n))
+    assert not model.exact_.exact_quantiles
+    table = model.summary(0.9, target=0.4)
+    th = model.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
+    want = np.quantile(th, [0.05, 0.5, 0.95], axis=1)
+    # equal up to the last bit of numpy's interpolation, which follows the memory layout
+    np.testing.assert_allclose(table[["lower", "posterior_median", "upper"]].to_numpy().T,
+                               want, rtol=1e-14, atol=0)
+    # the exact engine's target probability stays its closed form, not the draws' share
+    np.testing.assert_allclose(table["prob_above_target"], model.exact_.sf(0.4))
+    np.testing.assert_array_equal(_posterior.draw_share_above(model.idata_, 0.4),
+                                  (th > 0.4).mean(axis=1))

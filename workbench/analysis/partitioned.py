@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..models import attr
+from ..models import attr, draw_quantiles
 from ..models._grid import distinct_pairs
 
 #: Partitions per worker thread when none are asked for.
@@ -72,8 +72,8 @@ def score_on_cluster(client, estimator, level: float, target: float | None = Non
     parts = client.gather(futures)
     per_pair = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
     if not quantiles:  # the summary's own rule: intervals from the draws
-        th = estimator.idata_.posterior["theta"].stack(sample=("chain", "draw")).values
-        lower, median, upper = np.quantile(th, [(1 - level) / 2, 0.5, (1 + level) / 2], axis=1)
+        lower, median, upper = draw_quantiles(estimator.idata_,
+                                              [(1 - level) / 2, 0.5, (1 + level) / 2])
         per_group = {"posterior_median": median, "lower": lower, "upper": upper}
     else:
         per_group = {}
