@@ -181,21 +181,28 @@ def draw_share_above(idata: az.InferenceData, value: float) -> np.ndarray:
     return out
 
 
-def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
+def log_likelihood_arrays(idata: az.InferenceData,
+                          names: tuple[str, ...] = ("y", "y_group")) -> dict[str, np.ndarray]:
     """Conditional (``y``) and group-integrated (``y_group``) log-likelihood, (chain, draw, group).
 
     ``y`` is log Binomial(successes | trials, theta_j). ``y_group`` integrates theta_j out
     given the hyperparameters: Beta-binomial given (mu, kappa) for the beta-binomial model,
     the prior predictive Beta-binomial(a, b) for no pooling (whose left-out group learns
     nothing from the others), and the Binomial given the shared rate for complete pooling.
+    Only the ``names`` asked for are returned (``y`` is not computed where it is not asked
+    for and ``y_group`` does not need it).
     """
     data = counts_of(idata)
     y = data.successes.astype(float)
     n = data.trials.astype(float)
     th = idata.posterior["theta"].transpose("chain", "draw", "group").values
     lc = log_choose(n, y)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cond = lc + special.xlogy(y, th) + special.xlog1py(n - y, -th)
+
+    def conditional():
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return lc + special.xlogy(y, th) + special.xlog1py(n - y, -th)
+
+    cond = None
     model = attr(idata, "model")
     if model == "beta-binomial":
         mu = idata.posterior["mu"].values[..., None]
@@ -218,8 +225,14 @@ def log_likelihood_arrays(idata: az.InferenceData) -> dict[str, np.ndarray]:
         one = betabinom_logpmf(y, n, a, b)
         integrated = np.broadcast_to(one, th.shape).copy()
     else:
+        cond = conditional()
         integrated = cond.copy()
-    return {"y": cond, "y_group": integrated}
+    out = {}
+    if "y" in names:
+        out["y"] = cond if cond is not None else conditional()
+    if "y_group" in names:
+        out["y_group"] = integrated
+    return out
 
 
 _AGH_T, _AGH_W = np.polynomial.hermite_e.hermegauss(12)

@@ -170,7 +170,7 @@ def _group_loglik(idata, cols: np.ndarray) -> np.ndarray:
         ll = idata.log_likelihood["y_group"].transpose("chain", "draw", "group").values
         ll = ll.reshape(-1, ll.shape[-1])[:, cols]
     else:
-        ll = log_likelihood_arrays(_subset(idata, cols))["y_group"]
+        ll = log_likelihood_arrays(_subset(idata, cols), names=("y_group",))["y_group"]
         ll = ll.reshape(-1, ll.shape[-1])
     return np.ascontiguousarray(ll.T)
 

@@ -711,3 +711,18 @@ def test_groups_sharing_counts_share_one_psis_pass_with_the_same_values(model, m
         np.testing.assert_allclose(shared.table[end], alone.table[end], atol=0.08)
     # and the pairs really repeat: 400 groups, at most 20 distinct (successes, trials)
     assert shared.table[["successes", "trials"]].drop_duplicates().shape[0] <= 20
+
+
+@pytest.mark.parametrize("model", ["beta-binomial", "complete-pooling", "no-pooling"])
+def test_leaving_groups_out_without_a_stored_log_likelihood_gives_the_same_table(model):
+    # past LOG_LIKELIHOOD_CELLS the fit stores no log_likelihood group and y_group is computed
+    # by chunks of groups (without the conditional one); reference: the stored arrays
+    rng = np.random.default_rng(21)
+    n = rng.integers(1, 40, 120)
+    counts = GroupCounts([f"g{i}" for i in range(120)], rng.binomial(n, 0.3), n)
+    idata = make_model(model, random_seed=4, draws=200).fit(counts).idata_
+    stored = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(1))
+    del idata.log_likelihood
+    assert "log_likelihood" not in idata.groups()
+    computed = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(1))
+    pd.testing.assert_frame_equal(stored.table, computed.table, check_exact=False, rtol=1e-12)
