@@ -15,6 +15,8 @@ from matplotlib.collections import LineCollection, PathCollection
 from matplotlib.figure import Figure
 from matplotlib.transforms import Bbox, ScaledTranslation
 
+from . import _merge
+
 #: The workbench palette: chosen so every pair stays apart (CIELAB distance >= 18) under
 #: simulated protan, deutan and tritan colour vision; meaning is also carried by marker
 #: shape and line style, never by colour alone.
@@ -350,7 +352,12 @@ def _draw_band(
     colour: str,
     alpha: float,
 ) -> None:
-    """The squeezed rows between the labelled ones: thin interval lines and their centres."""
+    """The squeezed rows between the labelled ones: thin interval lines and their centres
+    (above :data:`MERGE_ABOVE` rows, merged to the pixel rows they land on)."""
+    if len(mid) > _merge.MERGE_ABOVE:
+        _merge.merged_band(ax, lower[mid], upper[mid], centre[mid], pos[mid], colour=colour,
+                           alpha=alpha)
+        return
     segments = np.stack([np.c_[lower[mid], pos[mid]], np.c_[upper[mid], pos[mid]]], axis=1)
     ax.add_collection(
         LineCollection(segments, colors=colour, linewidths=0.3, alpha=alpha, rasterized=True)

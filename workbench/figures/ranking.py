@@ -7,6 +7,7 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.lines import Line2D
 
+from ._merge import merge_marks
 from ._style import (
     PALETTE,
     _apply_style,
@@ -81,11 +82,12 @@ def plot_funnel(
             zorder=1,
             label=f"{benchmark_name} {bench:.3g}",
         )
-    out998 = _funnel_points(ax, table)
+    out998 = _flag(table, "outside_998")
+    flagged = _most_extreme(table[out998], limits_of=funnel, label=label)
+    _funnel_points(ax, table, named=table.index.isin(flagged.index))
     ax.set_xscale("log")
     ax.set_xlabel("trials (log scale)")
     ax.set_ylabel("observed rate")
-    flagged = _most_extreme(table[out998], limits_of=funnel, label=label)
     if n:
         lo = min(float(table["observed_rate"].min()), float(np.nanmin(lines[("998", "lower")])))
         hi = max(float(table["observed_rate"].max()), float(np.nanmax(lines[("998", "upper")])))
@@ -147,9 +149,9 @@ def _funnel_edges(ax: Axes, x: np.ndarray, lines: dict) -> None:
         )
 
 
-def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
-    """The groups, by colour and shape inside / outside each pair of limits; returns the
-    mask of the groups outside the 99.8% limits."""
+def _funnel_points(ax: Axes, table: pd.DataFrame, named: np.ndarray | None = None) -> None:
+    """The groups, by colour and shape inside / outside each pair of limits; at many groups
+    merged to the pixels within each kind, the ``named`` ones always drawn one by one."""
     n = len(table)
     out95 = _flag(table, "outside_95")
     out998 = _flag(table, "outside_998")
@@ -161,7 +163,7 @@ def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
     ]
     for mask, marker, colour, size, text in kinds:
         part = table[mask]
-        ax.scatter(
+        marks = ax.scatter(
             part["trials"],
             part["observed_rate"],
             s=size,
@@ -175,7 +177,7 @@ def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
             rasterized=n > 2000,
             clip_on=False,  # a rate of 0 or 1 on the frame is drawn whole
         )
-    return out998
+        merge_marks(marks, keep=None if named is None else named[mask])
 
 
 def _limit_column(table: pd.DataFrame, level: str, side: str) -> str:
