@@ -13,7 +13,9 @@ pixel grid it is drawn on (the layout and the dpi are final only then):
   from the least lower end to the greatest upper end of the rows on it (same colour, width
   and opacity), and the line through the centres reduced to the first, last, leftmost and
   rightmost centre of each pixel row, in order (the pixels a polyline covers in a pixel row
-  are those of these four vertices and their joins).
+  are those of these four vertices and their joins). Used only where one interval line is
+  fainter than the canvas's 8-bit opacity step (see ``_style._draw_band``): matplotlib's
+  Agg canvas draws such lines not at all, stacked or not.
 
 At or below the threshold nothing here is used: the figures draw exactly as before.
 """
@@ -33,7 +35,6 @@ _DIAMETER_STEP = 0.5
 
 #: a cell of many marks is drawn as at most this many layers (see ``_MergedMarks.draw``)
 _LAYERS = 3
-_CELL_SHIFT = (0.0, 0.0)
 
 
 def merge_marks(coll: PathCollection, keep: np.ndarray | None = None) -> PathCollection:
@@ -75,7 +76,7 @@ class _MergedMarks(PathCollection):
         disp = self.get_offset_transform().transform(offsets)
         ok = np.isfinite(disp).all(axis=1)
         pool = np.flatnonzero(ok & ~keep)
-        cells = np.floor(disp[pool] + _CELL_SHIFT).astype(np.int64)
+        cells = np.floor(disp[pool]).astype(np.int64)
         width = np.floor(np.sqrt(sizes[pool]) * fig.dpi / 72.0 / _DIAMETER_STEP).astype(np.int64)
         if len(pool):
             cells -= cells.min(axis=0)

@@ -352,9 +352,14 @@ def _draw_band(
     colour: str,
     alpha: float,
 ) -> None:
-    """The squeezed rows between the labelled ones: thin interval lines and their centres
-    (above :data:`MERGE_ABOVE` rows, merged to the pixel rows they land on)."""
-    if len(mid) > _merge.MERGE_ABOVE:
+    """The squeezed rows between the labelled ones: thin interval lines and their centres.
+
+    Above :data:`MERGE_ABOVE` rows, merged to the pixel rows they land on, when one interval
+    line's opacity is below the canvas's 8-bit step (the full drawing then shows none of
+    them, however many overlap: only the centre line is seen, and merged it covers the same
+    pixels). A visible opacity keeps the full drawing: stacked lines darken where they
+    overlap, which one envelope per pixel row would not show."""
+    if len(mid) > _merge.MERGE_ABOVE and alpha * 255 < 0.5:
         _merge.merged_band(ax, lower[mid], upper[mid], centre[mid], pos[mid], colour=colour,
                            alpha=alpha)
         return
