@@ -102,6 +102,45 @@ def _require(table: pd.DataFrame, columns: Sequence[str], what: str) -> None:
         raise ValueError(f"{what} needs columns {missing}; found {list(table.columns)}.")
 
 
+def sort_rows(table: pd.DataFrame, keys: list[str], ascending: list[bool]) -> pd.DataFrame:
+    """``table.sort_values(keys, ascending=ascending)``: the same rows in the same order. At
+    many rows whose keys are numbers (none NaN or missing) or strings (none missing), sorted
+    by pyarrow (stable; strings by code point, as Python compares them): several times
+    faster on a million rows of string names."""
+    columns = _arrow_keys(table, keys) if len(table) > _merge.MERGE_ABOVE else None
+    if columns is None:
+        return table.sort_values(keys, ascending=ascending)
+    import pyarrow.compute as pc
+
+    order = pc.sort_indices(columns, sort_keys=[
+        (key, "ascending" if up else "descending") for key, up in zip(keys, ascending,
+                                                                      strict=True)])
+    return table.iloc[order.to_numpy()]
+
+
+def _arrow_keys(table: pd.DataFrame, keys: list[str]):
+    """The sort keys as a pyarrow table, or None where pandas must sort (see sort_rows)."""
+    try:
+        import pyarrow as pa
+    except ImportError:
+        return None
+    columns = {}
+    for key in keys:
+        values = table[key]
+        if values.isna().any():
+            return None
+        if pd.api.types.is_numeric_dtype(values):
+            data = values.to_numpy()
+            if data.dtype.kind == "f" and not np.isfinite(data).all():
+                return None
+            columns[key] = pa.array(data)
+        elif pd.api.types.is_string_dtype(values):  # (an object column only if all str)
+            columns[key] = pa.array(values, type=pa.large_string())
+        else:
+            return None
+    return pa.table(columns)
+
+
 def row_positions(
     n: int, show: int, *, every: int = 70, band: float = 8.0
 ) -> tuple[np.ndarray, tuple | None]:

@@ -27,6 +27,7 @@ from ._style import (
     _spread_labels,
     _title,
     row_axes,
+    sort_rows,
 )
 
 # -- shrinkage ----------------------------------------------------------------------------------
@@ -204,7 +205,7 @@ def plot_intervals(
         Up to this many groups, every one gets a labelled row.
     """
     _require(estimates, ["group", "posterior_mean", "lower", "upper"], "plot_intervals")
-    table = estimates.sort_values(["posterior_mean", "group"], ascending=[False, True])
+    table = sort_rows(estimates, ["posterior_mean", "group"], [False, True])
     n = len(table)
     ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["lower"].to_numpy(dtype=float)
@@ -327,7 +328,7 @@ def plot_parents(parents: pd.DataFrame, *, level: float | None = None, ax: Axes 
         As for :func:`plot_intervals`.
     """
     _require(parents, ["parent", "effect_mean", "effect_lower", "effect_upper"], "plot_parents")
-    table = parents.sort_values(["effect_mean", "parent"], ascending=[False, True])
+    table = sort_rows(parents, ["effect_mean", "parent"], [False, True])
     n = len(table)
     ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["effect_lower"].to_numpy(dtype=float)

@@ -24,6 +24,7 @@ from ._style import (
     _spread_labels,
     _title,
     row_axes,
+    sort_rows,
 )
 
 # -- funnel -------------------------------------------------------------------------------------
@@ -233,7 +234,7 @@ def plot_ranks(
         sort_cols.insert(1, "prob_best_k")
         ascending.insert(1, False)
     unranked = int(ranks["rank_median"].isna().sum())  # groups with no trials: no data
-    table = ranks.dropna(subset=["rank_median"]).sort_values(sort_cols, ascending=ascending)
+    table = sort_rows(ranks.dropna(subset=["rank_median"]), sort_cols, ascending)
     n = len(table)
     if k is None:
         k = int(ranks["k"].iloc[0]) if "k" in ranks.columns and n else 5

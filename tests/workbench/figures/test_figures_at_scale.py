@@ -19,6 +19,7 @@ from PIL import Image
 
 from workbench import figures
 from workbench.figures import _merge
+from workbench.figures._style import sort_rows
 from workbench.figures.casemix import plot_oe_funnel
 from workbench.report.images import FIGURE_DPI
 
@@ -233,3 +234,21 @@ def test_merged_band_keeps_each_pixel_rows_extremes(monkeypatch):
         assert any((high, at) in kept for at in y[on][x[on] == high])
         (seg,) = [s for s, r in zip(segs, seg_rows, strict=True) if r == row]
         assert seg[0, 0] == lower[on].min() and seg[1, 0] == upper[on].max()
+
+
+def test_rows_sorted_at_scale_in_pandas_own_order():
+    """The row figures' order at many rows is pandas' sort_values order (the reference),
+    ties broken by name, with NaN keys left to pandas."""
+    rng = np.random.default_rng(2)
+    n = 25_000
+    table = pd.DataFrame({"posterior_mean": rng.integers(0, 50, n) / 50,  # many ties
+                          "group": [f"g{v}" for v in rng.permutation(n)],
+                          "prob": rng.integers(0, 3, n) / 2})
+    for keys, up in ((["posterior_mean", "group"], [False, True]),
+                     (["posterior_mean", "prob", "group"], [True, False, True])):
+        got = sort_rows(table, keys, up)
+        assert got.index.equals(table.sort_values(keys, ascending=up).index)
+    table.loc[7, "posterior_mean"] = np.nan
+    got = sort_rows(table, ["posterior_mean", "group"], [False, True])
+    assert got.index.equals(table.sort_values(["posterior_mean", "group"],
+                                              ascending=[False, True]).index)
