@@ -9,7 +9,8 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.transforms import ScaledTranslation
 
-from ._merge import MERGE_ABOVE, merge_marks
+from . import _merge
+from ._merge import merge_marks
 from ._style import (
     PALETTE,
     _apply_style,
@@ -102,7 +103,7 @@ def _named(drawn: pd.DataFrame, label: int) -> pd.DataFrame:
     if n <= 12:
         return drawn.sort_values(keys, ascending=ascending)
     mean = drawn["posterior_mean"].to_numpy(dtype=float)
-    if n > MERGE_ABOVE and 0 < label < n // 2 and np.isfinite(mean).all():
+    if n > _merge.MERGE_ABOVE and 0 < label < n // 2 and np.isfinite(mean).all():
         high = np.partition(mean, n - label)[n - label]
         low = np.partition(mean, label - 1)[label - 1]
         drawn = drawn[(mean >= high) | (mean <= low)]

@@ -7,6 +7,7 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.lines import Line2D
 
+from . import _merge
 from ._merge import merge_marks
 from ._style import (
     PALETTE,
@@ -121,8 +122,13 @@ def _most_extreme(outside: pd.DataFrame, *, limits_of: pd.DataFrame, label: int)
     reach = np.where(rate >= bench, upper - bench, bench - lower)
     with np.errstate(divide="ignore", invalid="ignore"):
         beyond = np.where(reach > 0, np.abs(rate - bench) / reach, np.inf)
-    order = outside.assign(_beyond=beyond).sort_values(["_beyond", "group"],
-                                                       ascending=[False, True])
+    keep = slice(None)
+    many = len(outside) > _merge.MERGE_ABOVE
+    if many and 0 < label < len(outside) and not np.isnan(beyond).any():
+        # only the rows that can be among the first ``label``: the same rows, same order
+        keep = beyond >= np.partition(beyond, len(beyond) - label)[len(beyond) - label]
+    order = outside[keep].assign(_beyond=beyond[keep]).sort_values(["_beyond", "group"],
+                                                                   ascending=[False, True])
     return order.head(label).drop(columns="_beyond")
 
 
@@ -163,7 +169,7 @@ def _funnel_points(ax: Axes, table: pd.DataFrame, named: np.ndarray | None = Non
         (out998, "^", PALETTE["mulberry"], small + 14, "outside 99.8%"),
     ]
     for mask, marker, colour, size, text in kinds:
-        part = table[mask]
+        part = table.loc[mask, ["trials", "observed_rate"]]
         marks = ax.scatter(
             part["trials"],
             part["observed_rate"],

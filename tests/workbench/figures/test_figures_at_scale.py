@@ -252,3 +252,26 @@ def test_rows_sorted_at_scale_in_pandas_own_order():
     got = sort_rows(table, ["posterior_mean", "group"], [False, True])
     assert got.index.equals(table.sort_values(["posterior_mean", "group"],
                                               ascending=[False, True]).index)
+
+
+def test_named_groups_at_scale_are_those_of_sorting_every_group(monkeypatch):
+    """Shrinkage's named groups and the funnel's most extreme ones, picked at many groups
+    from the rows that can be among them, are those of pandas sorting every row (the
+    reference: the threshold raised so every row is sorted), ties included."""
+    from workbench.figures import estimates, ranking
+
+    t = invented_run(60_000, seed=4)
+    drawn = t["estimates"][t["estimates"]["observed_rate"].notna()]
+    drawn = drawn.assign(posterior_mean=drawn["posterior_mean"].round(3))  # many ties
+    table = t["funnel"][t["funnel"]["trials"] > 0]
+    outside = table[table["outside_998"] != ""]
+    outside = outside.assign(observed_rate=outside["observed_rate"].round(2))
+    assert len(outside) > 5_000  # above the threshold set next: the shortcut is taken
+    monkeypatch.setattr(_merge, "MERGE_ABOVE", 5_000)
+    fast = [estimates._named(drawn, k).index for k in (1, 4, 9)]
+    extreme = [ranking._most_extreme(outside, limits_of=table, label=k).index for k in (1, 4)]
+    monkeypatch.setattr(_merge, "MERGE_ABOVE", 10**12)
+    assert all(f.equals(estimates._named(drawn, k).index)
+               for f, k in zip(fast, (1, 4, 9), strict=True))
+    assert all(f.equals(ranking._most_extreme(outside, limits_of=table, label=k).index)
+               for f, k in zip(extreme, (1, 4), strict=True))
