@@ -10,6 +10,8 @@ are drawing; means, quantiles and intervals come from the tables.
 
 Readable at any size: with more groups than fit as labelled rows, the first and last rows are
 drawn and labelled and the rows between them are squeezed, in order, into an unlabelled band.
+Above 20,000 marks in one artist, marks that land on the same pixels are merged when drawn
+(:mod:`workbench.figures._merge`): the picture is the same, the cost bounded by the pixels.
 
 >>> import pandas as pd
 >>> from workbench import figures

@@ -15,6 +15,8 @@ from matplotlib.collections import LineCollection, PathCollection
 from matplotlib.figure import Figure
 from matplotlib.transforms import Bbox, ScaledTranslation
 
+from . import _merge
+
 #: The workbench palette: chosen so every pair stays apart (CIELAB distance >= 18) under
 #: simulated protan, deutan and tritan colour vision; meaning is also carried by marker
 #: shape and line style, never by colour alone.
@@ -98,6 +100,45 @@ def _require(table: pd.DataFrame, columns: Sequence[str], what: str) -> None:
     missing = [c for c in columns if c not in table.columns]
     if missing:
         raise ValueError(f"{what} needs columns {missing}; found {list(table.columns)}.")
+
+
+def sort_rows(table: pd.DataFrame, keys: list[str], ascending: list[bool]) -> pd.DataFrame:
+    """``table.sort_values(keys, ascending=ascending)``: the same rows in the same order. At
+    many rows whose keys are numbers (none NaN or missing) or strings (none missing), sorted
+    by pyarrow (stable; strings by code point, as Python compares them): several times
+    faster on a million rows of string names."""
+    columns = _arrow_keys(table, keys) if len(table) > _merge.MERGE_ABOVE else None
+    if columns is None:
+        return table.sort_values(keys, ascending=ascending)
+    import pyarrow.compute as pc
+
+    order = pc.sort_indices(columns, sort_keys=[
+        (key, "ascending" if up else "descending") for key, up in zip(keys, ascending,
+                                                                      strict=True)])
+    return table.iloc[order.to_numpy()]
+
+
+def _arrow_keys(table: pd.DataFrame, keys: list[str]):
+    """The sort keys as a pyarrow table, or None where pandas must sort (see sort_rows)."""
+    try:
+        import pyarrow as pa
+    except ImportError:
+        return None
+    columns = {}
+    for key in keys:
+        values = table[key]
+        if values.isna().any():
+            return None
+        if pd.api.types.is_numeric_dtype(values):
+            data = values.to_numpy()
+            if data.dtype.kind == "f" and not np.isfinite(data).all():
+                return None
+            columns[key] = pa.array(data)
+        elif pd.api.types.is_string_dtype(values):  # (an object column only if all str)
+            columns[key] = pa.array(values, type=pa.large_string())
+        else:
+            return None
+    return pa.table(columns)
 
 
 def row_positions(
@@ -350,7 +391,17 @@ def _draw_band(
     colour: str,
     alpha: float,
 ) -> None:
-    """The squeezed rows between the labelled ones: thin interval lines and their centres."""
+    """The squeezed rows between the labelled ones: thin interval lines and their centres.
+
+    Above :data:`MERGE_ABOVE` rows, merged to the pixel rows they land on, when one interval
+    line's opacity is below the canvas's 8-bit step (the full drawing then shows none of
+    them, however many overlap: only the centre line is seen, and merged it covers the same
+    pixels). A visible opacity keeps the full drawing: stacked lines darken where they
+    overlap, which one envelope per pixel row would not show."""
+    if len(mid) > _merge.MERGE_ABOVE and alpha * 255 < 0.5:
+        _merge.merged_band(ax, lower[mid], upper[mid], centre[mid], pos[mid], colour=colour,
+                           alpha=alpha)
+        return
     segments = np.stack([np.c_[lower[mid], pos[mid]], np.c_[upper[mid], pos[mid]]], axis=1)
     ax.add_collection(
         LineCollection(segments, colors=colour, linewidths=0.3, alpha=alpha, rasterized=True)

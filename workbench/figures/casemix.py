@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 from matplotlib.axes import Axes
 
+from ._merge import merge_marks
 from ._style import PALETTE, _apply_style, _legend_below, _new_axes, _require, text_label
 
 
@@ -39,12 +40,15 @@ def plot_oe_funnel(table: pd.DataFrame, curve: pd.DataFrame | None = None, *,
     kinds = [(~out95 & ~out998, "o", PALETTE["harbour"], 18, "inside the 95% limits"),
              (out95 & ~out998, "D", PALETTE["ochre"], 22, "outside 95%"),
              (out998, "^", PALETTE["mulberry"], 32, "outside 99.8%")]
+    named = shown[out998].sort_values("expected", ascending=False).head(label)
+    is_named = shown.index.isin(named.index)
     for mask, marker, colour, size, text in kinds:
         part = shown[mask]
-        ax.scatter(part["expected"], part["observed_expected"], s=size, marker=marker,
-                   color=colour, edgecolors="white", linewidths=0.5, zorder=3,
-                   label=f"{text} ({len(part)})")
-    named = shown[out998].sort_values("expected", ascending=False).head(label)
+        marks = ax.scatter(part["expected"], part["observed_expected"], s=size, marker=marker,
+                           color=colour, edgecolors="white", linewidths=0.5, zorder=3,
+                           label=f"{text} ({len(part)})")
+        # at many groups merged to the pixels within each kind; the named drawn one by one
+        merge_marks(marks, keep=is_named[mask])
     for _, row in named.iterrows():
         ax.annotate(text_label(row["group"]), (row["expected"], row["observed_expected"]),
                     xytext=(4, 2), textcoords="offset points", fontsize=7.5,

@@ -9,6 +9,8 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.transforms import ScaledTranslation
 
+from . import _merge
+from ._merge import merge_marks
 from ._style import (
     PALETTE,
     _apply_style,
@@ -26,6 +28,7 @@ from ._style import (
     _spread_labels,
     _title,
     row_axes,
+    sort_rows,
 )
 
 # -- shrinkage ----------------------------------------------------------------------------------
@@ -70,7 +73,8 @@ def plot_shrinkage(
         zorder=1,
     )
     _population_line(ax, population)
-    _size_scatter(ax, drawn)
+    named = _named(drawn, label) if n else None  # drawn one by one however many groups
+    _size_scatter(ax, drawn, None if named is None else drawn.index.isin(named.index))
     _square_limits(ax, drawn)
     ax.set_xlabel("observed rate (successes / trials)")
     ax.set_ylabel("estimate (posterior mean)")
@@ -79,9 +83,7 @@ def plot_shrinkage(
     if missing:
         _corner_note(ax, f"{_count(missing)} group(s) with no trials not drawn", top=False)
     ax.legend(loc="upper left", fontsize=7.5, scatterpoints=1, labelspacing=0.9, borderaxespad=0.6)
-    if n:  # named last: the names keep clear of the markers, the legend and the note
-        order = drawn.sort_values(["posterior_mean", "group"], ascending=[False, True])
-        named = order if n <= 12 else pd.concat([order.head(label), order.tail(label)])
+    if named is not None:  # named last: clear of the markers, the legend and the note
         _spread_labels(
             ax,
             named["observed_rate"].to_numpy(),
@@ -89,6 +91,24 @@ def plot_shrinkage(
             named["group"].to_list(),
         )
     return ax
+
+
+def _named(drawn: pd.DataFrame, label: int) -> pd.DataFrame:
+    """The groups named on the shrinkage figure: all (12 or fewer), else the ``label``
+    highest and lowest estimates, ties by name. At many groups only the rows that can be
+    among them (estimate at or past the ``label``-th from either end) are sorted: the same
+    rows in the same order as sorting every group."""
+    keys, ascending = ["posterior_mean", "group"], [False, True]
+    n = len(drawn)
+    if n <= 12:
+        return drawn.sort_values(keys, ascending=ascending)
+    mean = drawn["posterior_mean"].to_numpy(dtype=float)
+    if n > _merge.MERGE_ABOVE and 0 < label < n // 2 and np.isfinite(mean).all():
+        high = np.partition(mean, n - label)[n - label]
+        low = np.partition(mean, label - 1)[label - 1]
+        drawn = drawn[(mean >= high) | (mean <= low)]
+    order = drawn.sort_values(keys, ascending=ascending)
+    return pd.concat([order.head(label), order.tail(label)])
 
 
 def _population_line(ax: Axes, population: pd.DataFrame | None) -> None:
@@ -105,13 +125,14 @@ def _population_line(ax: Axes, population: pd.DataFrame | None) -> None:
     )
 
 
-def _size_scatter(ax: Axes, drawn: pd.DataFrame) -> None:
-    """The groups as markers whose area grows with trials, and a legend of round sizes."""
+def _size_scatter(ax: Axes, drawn: pd.DataFrame, named: np.ndarray | None = None) -> None:
+    """The groups as markers whose area grows with trials, and a legend of round sizes; at
+    many groups merged to the pixels, the ``named`` ones always drawn one by one."""
     n = len(drawn)
     trials = drawn["trials"].to_numpy(dtype=float)
     biggest = float(trials.max()) if n else 1.0
     scale = 160.0 if n <= 100 else 60.0 if n <= 1000 else 18.0
-    ax.scatter(
+    marks = ax.scatter(
         drawn["observed_rate"],
         drawn["posterior_mean"],
         s=6.0 + scale * np.sqrt(trials / max(biggest, 1.0)),
@@ -123,6 +144,7 @@ def _size_scatter(ax: Axes, drawn: pd.DataFrame) -> None:
         rasterized=n > 2000,
         clip_on=False,  # a rate of 0 or 1 sits on the frame: drawn whole, never half-cut
     )
+    merge_marks(marks, keep=named)
     for ref in _size_steps(biggest):
         ax.scatter(
             [],
@@ -184,7 +206,7 @@ def plot_intervals(
         Up to this many groups, every one gets a labelled row.
     """
     _require(estimates, ["group", "posterior_mean", "lower", "upper"], "plot_intervals")
-    table = estimates.sort_values(["posterior_mean", "group"], ascending=[False, True])
+    table = sort_rows(estimates, ["posterior_mean", "group"], [False, True])
     n = len(table)
     ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["lower"].to_numpy(dtype=float)
@@ -307,7 +329,7 @@ def plot_parents(parents: pd.DataFrame, *, level: float | None = None, ax: Axes 
         As for :func:`plot_intervals`.
     """
     _require(parents, ["parent", "effect_mean", "effect_lower", "effect_upper"], "plot_parents")
-    table = parents.sort_values(["effect_mean", "parent"], ascending=[False, True])
+    table = sort_rows(parents, ["effect_mean", "parent"], [False, True])
     n = len(table)
     ax, pos, band, idx = row_axes(ax, n, show, every)
     lower = table["effect_lower"].to_numpy(dtype=float)

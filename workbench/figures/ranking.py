@@ -7,6 +7,8 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.lines import Line2D
 
+from . import _merge
+from ._merge import merge_marks
 from ._style import (
     PALETTE,
     _apply_style,
@@ -23,6 +25,7 @@ from ._style import (
     _spread_labels,
     _title,
     row_axes,
+    sort_rows,
 )
 
 # -- funnel -------------------------------------------------------------------------------------
@@ -81,11 +84,12 @@ def plot_funnel(
             zorder=1,
             label=f"{benchmark_name} {bench:.3g}",
         )
-    out998 = _funnel_points(ax, table)
+    out998 = _flag(table, "outside_998")
+    flagged = _most_extreme(table[out998], limits_of=funnel, label=label)
+    _funnel_points(ax, table, named=table.index.isin(flagged.index))
     ax.set_xscale("log")
     ax.set_xlabel("trials (log scale)")
     ax.set_ylabel("observed rate")
-    flagged = _most_extreme(table[out998], limits_of=funnel, label=label)
     if n:
         lo = min(float(table["observed_rate"].min()), float(np.nanmin(lines[("998", "lower")])))
         hi = max(float(table["observed_rate"].max()), float(np.nanmax(lines[("998", "upper")])))
@@ -118,8 +122,13 @@ def _most_extreme(outside: pd.DataFrame, *, limits_of: pd.DataFrame, label: int)
     reach = np.where(rate >= bench, upper - bench, bench - lower)
     with np.errstate(divide="ignore", invalid="ignore"):
         beyond = np.where(reach > 0, np.abs(rate - bench) / reach, np.inf)
-    order = outside.assign(_beyond=beyond).sort_values(["_beyond", "group"],
-                                                       ascending=[False, True])
+    keep = slice(None)
+    many = len(outside) > _merge.MERGE_ABOVE
+    if many and 0 < label < len(outside) and not np.isnan(beyond).any():
+        # only the rows that can be among the first ``label``: the same rows, same order
+        keep = beyond >= np.partition(beyond, len(beyond) - label)[len(beyond) - label]
+    order = outside[keep].assign(_beyond=beyond[keep]).sort_values(["_beyond", "group"],
+                                                                   ascending=[False, True])
     return order.head(label).drop(columns="_beyond")
 
 
@@ -147,9 +156,9 @@ def _funnel_edges(ax: Axes, x: np.ndarray, lines: dict) -> None:
         )
 
 
-def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
-    """The groups, by colour and shape inside / outside each pair of limits; returns the
-    mask of the groups outside the 99.8% limits."""
+def _funnel_points(ax: Axes, table: pd.DataFrame, named: np.ndarray | None = None) -> None:
+    """The groups, by colour and shape inside / outside each pair of limits; at many groups
+    merged to the pixels within each kind, the ``named`` ones always drawn one by one."""
     n = len(table)
     out95 = _flag(table, "outside_95")
     out998 = _flag(table, "outside_998")
@@ -160,8 +169,8 @@ def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
         (out998, "^", PALETTE["mulberry"], small + 14, "outside 99.8%"),
     ]
     for mask, marker, colour, size, text in kinds:
-        part = table[mask]
-        ax.scatter(
+        part = table.loc[mask, ["trials", "observed_rate"]]
+        marks = ax.scatter(
             part["trials"],
             part["observed_rate"],
             s=size,
@@ -175,7 +184,7 @@ def _funnel_points(ax: Axes, table: pd.DataFrame) -> np.ndarray:
             rasterized=n > 2000,
             clip_on=False,  # a rate of 0 or 1 on the frame is drawn whole
         )
-    return out998
+        merge_marks(marks, keep=None if named is None else named[mask])
 
 
 def _limit_column(table: pd.DataFrame, level: str, side: str) -> str:
@@ -231,7 +240,7 @@ def plot_ranks(
         sort_cols.insert(1, "prob_best_k")
         ascending.insert(1, False)
     unranked = int(ranks["rank_median"].isna().sum())  # groups with no trials: no data
-    table = ranks.dropna(subset=["rank_median"]).sort_values(sort_cols, ascending=ascending)
+    table = sort_rows(ranks.dropna(subset=["rank_median"]), sort_cols, ascending)
     n = len(table)
     if k is None:
         k = int(ranks["k"].iloc[0]) if "k" in ranks.columns and n else 5
