@@ -166,7 +166,7 @@ def _stacked(colour: np.ndarray, layers: int) -> np.ndarray:
 # -- the squeezed band ------------------------------------------------------------------------
 
 
-def merged_band(ax, lower, upper, centre, rows, *, colour, alpha) -> None:
+def merged_band(ax, lower, upper, centre, rows, *, colour, alpha, centre_colour) -> None:
     """The squeezed band's interval lines and centre line, merged per pixel row."""
     envelopes = _RowEnvelopes([], colors=colour, linewidths=0.3, alpha=alpha, rasterized=True)
     envelopes._full = (np.asarray(lower, float), np.asarray(upper, float),
@@ -175,9 +175,7 @@ def merged_band(ax, lower, upper, centre, rows, *, colour, alpha) -> None:
     ends = np.r_[lower, upper]
     if np.isfinite(ends).any():
         ax.update_datalim([(np.nanmin(ends), np.min(rows)), (np.nanmax(ends), np.max(rows))])
-    from ._style import PALETTE
-
-    (line,) = ax.plot(centre, rows, color=PALETTE["ink"], linewidth=0.8, rasterized=True)
+    (line,) = ax.plot(centre, rows, color=centre_colour, linewidth=0.8, rasterized=True)
     line.__class__ = _RowCentres
     line._full = (np.asarray(centre, float), np.asarray(rows, float))
 

@@ -400,7 +400,7 @@ def _draw_band(
     overlap, which one envelope per pixel row would not show."""
     if len(mid) > _merge.MERGE_ABOVE and alpha * 255 < 0.5:
         _merge.merged_band(ax, lower[mid], upper[mid], centre[mid], pos[mid], colour=colour,
-                           alpha=alpha)
+                           alpha=alpha, centre_colour=PALETTE["ink"])
         return
     segments = np.stack([np.c_[lower[mid], pos[mid]], np.c_[upper[mid], pos[mid]]], axis=1)
     ax.add_collection(
