@@ -23,6 +23,7 @@ from ._posterior import (
     attr,
     counts_of,
     draw_quantiles,
+    draw_share_above,
     log_likelihood_arrays,
     theta_draws,
     versions,
@@ -62,5 +63,6 @@ __all__ = [
     "make_model",
     "theta_draws",
     "draw_quantiles",
+    "draw_share_above",
     "versions",
 ]

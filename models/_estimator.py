@@ -203,7 +203,7 @@ class _Estimator:
             if exact is not None:
                 above = exact.sf(target)
             else:
-                above = draw_share_above(self.idata_, target)
+                above = draw_share_above(theta_draws(self.idata_), target)
             table["prob_above_target"] = np.clip(above, 0.0, 1.0)
         return table
 

@@ -171,14 +171,14 @@ def draw_quantiles(idata: az.InferenceData, probs) -> np.ndarray:
     return out
 
 
-def draw_share_above(idata: az.InferenceData, value: float) -> np.ndarray:
-    """Each group's share of theta draws above ``value``, by chunks of groups."""
-    th = theta_draws(idata)
-    out = np.empty(th.shape[1])
-    step = max(1, QUANTILE_CHUNK_CELLS // max(th.shape[0], 1))
-    for start in range(0, th.shape[1], step):
-        out[start : start + step] = (th[:, start : start + step] > value).mean(axis=0)
-    return out
+def draw_share_above(theta: np.ndarray, value: float) -> np.ndarray:
+    """Each group's share of draws above ``value``; ``theta`` is (samples, groups), counted
+    by chunks of draws."""
+    total = np.zeros(theta.shape[1])
+    step = max(1, QUANTILE_CHUNK_CELLS // max(theta.shape[1], 1))
+    for start in range(0, theta.shape[0], step):
+        total += (theta[start : start + step] > value).sum(axis=0)
+    return total / theta.shape[0]
 
 
 def log_likelihood_arrays(idata: az.InferenceData,

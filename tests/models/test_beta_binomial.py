@@ -233,5 +233,5 @@ def test_intervals_from_draws_are_numpy_quantiles_by_chunks_of_groups(monkeypatc
                                want, rtol=1e-14, atol=0)
     # the exact engine's target probability stays its closed form, not the draws' share
     np.testing.assert_allclose(table["prob_above_target"], model.exact_.sf(0.4))
-    np.testing.assert_array_equal(_posterior.draw_share_above(model.idata_, 0.4),
+    np.testing.assert_array_equal(_posterior.draw_share_above(th.T, 0.4),
                                   (th > 0.4).mean(axis=1))

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..models import closed_form, theta_draws
+from ..models import closed_form, draw_share_above, theta_draws
 
 #: largest draws x groups block worked on at once
 CHUNK_CELLS = 2_000_000
@@ -103,13 +103,6 @@ def chunks(n_draws: int, n_groups: int, cells: int = CHUNK_CELLS):
     step = max(1, cells // max(n_groups, 1))
     for start in range(0, n_draws, step):
         yield slice(start, min(start + step, n_draws))
-
-
-def draw_share_above(theta: np.ndarray, value: float) -> np.ndarray:
-    total = np.zeros(theta.shape[1])
-    for sl in chunks(*theta.shape):
-        total += (theta[sl] > value).sum(axis=0)
-    return total / theta.shape[0]
 
 
 def draw_moments(theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
