@@ -9,7 +9,6 @@ fits of invented counts.
 
 from __future__ import annotations
 
-import time
 import warnings
 
 import numpy as np
@@ -210,22 +209,3 @@ def test_leave_one_group_out_unchanged_for_logit_normal(monkeypatch):
     assert loo_module._relative_efficiency(idata) != 1.0  # MCMC: reff from the ESS
     fast, ref = both_ways(idata, monkeypatch)
     assert_same_result(fast, ref)
-
-
-@pytest.mark.slow  # timings at scale: about two minutes, most of it ArviZ
-@pytest.mark.reference
-@pytest.mark.parametrize(("groups", "samples"), [(10_000, 4_000), (100_000, 400)])
-def test_print_timings_against_arviz(groups, samples):
-    # speed is reported, not asserted; the answers must still be ArviZ's (the reference)
-    rng = np.random.default_rng(0)
-    ll = -2 + rng.uniform(0.1, 3, (groups, 1)) * rng.standard_normal((groups, samples))
-    start = time.perf_counter()
-    mine_lw, mine_k = fast_psis.psis_log_weights(-ll, 0.9)
-    mine_s = time.perf_counter() - start
-    start = time.perf_counter()
-    ref_lw, ref_k = arviz_psislw(-ll, 0.9)
-    ref_s = time.perf_counter() - start
-    print(f"\nPSIS of {groups:,} groups x {samples:,} draws: ArviZ {ref_s:.2f} s,"
-          f" fast_psis {mine_s:.2f} s ({ref_s / mine_s:.1f}x)")
-    same(mine_k, ref_k)
-    same(mine_lw, ref_lw)
