@@ -19,16 +19,19 @@ from __future__ import annotations
 
 import argparse
 import csv
+import sys
 import tempfile
 import time
 import warnings
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from workbench.analysis import fast_psis
 from workbench.io import atomic, fast_csv
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from helpers import estimates_like  # noqa: E402  (the tests' invented table, one home)
 
 
 def timed(fn):
@@ -51,17 +54,6 @@ def psis(groups: int, samples: int) -> None:
     print(f"PSIS of {groups:,} groups x {samples:,} draws: ArviZ {ref_w:.2f} s (CPU {ref_c:.2f}),"
           f" fast_psis {mine_w:.2f} s (CPU {mine_c:.2f}): {ref_w / mine_w:.1f}x wall,"
           f" equal to 1e-10")
-
-
-def estimates_like(n: int, rng) -> pd.DataFrame:
-    cols = {"group": pd.array(np.char.add("branch ", np.arange(n).astype(str)), dtype="str"),
-            "successes": rng.integers(0, 500, n), "trials": rng.integers(500, 1000, n)}
-    for j in range(15):
-        cols[f"q{j}"] = rng.beta(2, 30, n) * 10.0 ** (j % 5 - 2)
-    cols["q3"][::50] = np.nan
-    cols["outside"] = rng.random(n) < 0.1
-    cols["high_k"] = rng.random(n) < 0.01
-    return pd.DataFrame(cols)
 
 
 def csv_writer(rows: int) -> None:

@@ -38,3 +38,18 @@ class BetaGroups:
 
     def prob_above(self, value):
         return stats.beta.sf(value, self.a, self.b)
+
+
+def estimates_like(n: int, rng):
+    """An invented table shaped like estimates.csv: a text group column, 2 int, 15 float
+    columns (one with NaN) and 2 bool (for the CSV writer's tests and benchmark)."""
+    import pandas as pd
+
+    cols = {"group": pd.array(np.char.add("branch ", np.arange(n).astype(str)), dtype="str"),
+            "successes": rng.integers(0, 500, n), "trials": rng.integers(500, 1000, n)}
+    for j in range(15):
+        cols[f"q{j}"] = rng.beta(2, 30, n) * 10.0 ** (j % 5 - 2)
+    cols["q3"][::50] = np.nan
+    cols["outside"] = rng.random(n) < 0.1
+    cols["high_k"] = rng.random(n) < 0.01
+    return pd.DataFrame(cols)

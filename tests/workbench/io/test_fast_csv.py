@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from helpers import estimates_like
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -213,20 +214,10 @@ def test_short_tables_keep_pandas():
 
 # ----------------------------------------------------------------------- big and real tables
 
-def _estimates_like(n: int, rng) -> pd.DataFrame:
-    cols = {"group": pd.array(np.char.add("branch ", np.arange(n).astype(str)), dtype="str"),
-            "successes": rng.integers(0, 500, n), "trials": rng.integers(500, 1000, n)}
-    for j in range(15):
-        cols[f"q{j}"] = rng.beta(2, 30, n) * 10.0 ** (j % 5 - 2)
-    cols["q3"][::50] = np.nan
-    cols["outside"] = rng.random(n) < 0.1
-    cols["high_k"] = rng.random(n) < 0.01
-    return pd.DataFrame(cols)
-
 
 @pytest.mark.slow  # builds a 1,000,000-row table (about 1 s)
 def test_a_million_row_estimates_table_takes_the_fast_path():
-    table = _estimates_like(1_000_000, np.random.default_rng(3))
+    table = estimates_like(1_000_000, np.random.default_rng(3))
     safe = atomic.safe_for_spreadsheets(table)
     assert fast_csv.why_not(safe, csv.QUOTE_MINIMAL) is None
     writer = atomic.csv_writer(safe, csv.QUOTE_MINIMAL)
@@ -237,7 +228,7 @@ def test_a_million_row_estimates_table_takes_the_fast_path():
 def test_a_large_table_is_pandas_bytes(tmp_path):
     # reference: pandas' to_csv of the same frame (no text cell needs a guard here); the
     # timings of a million rows are printed by benchmarks/bench_psis_csv.py
-    table = _estimates_like(200_000, np.random.default_rng(4))
+    table = estimates_like(200_000, np.random.default_rng(4))
     table.to_csv(tmp_path / "old.csv", index=False, float_format="%.10g")
     atomic.write_csv(tmp_path / "new.csv", table)
     assert (tmp_path / "new.csv").read_bytes() == (tmp_path / "old.csv").read_bytes()
