@@ -10,6 +10,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy import special
 
@@ -66,7 +68,7 @@ def _betabinom_cdf_long(y: float, n: float, a, b, w) -> float:
     p ~ Beta(a, b) gives P(Y <= y) = E_Q[F(Q)], F the Beta(a, b) CDF (or the mixture's).
     The expectation is taken with 64 Gauss-Hermite nodes in Q's normal scores (Q's exact
     quantiles at the nodes), where F(Q) is smooth whatever the sizes (checked against
-    scipy.stats.betabinom in tests/models/test_stats.py).
+    scipy.stats.betabinom in tests/models/test_stats_long_tails.py).
     """
     x, h = _HERMITE
     z = np.sqrt(2.0) * x
@@ -87,3 +89,90 @@ def beta_from_moments(mean, var, *, floor: float = 1e-8):
     var = np.maximum(np.asarray(var, dtype=float), 1e-300)
     size = np.maximum(mean * (1 - mean) / var - 1, floor)
     return mean * size, (1 - mean) * size
+
+
+#: Most mass-function steps (draws x the longest walk of each distinct trials count)
+#: :func:`betabinom_cdf_pairs` takes; beyond it callers fall back to replicates.
+PAIR_CDF_STEPS = 1_000_000_000
+
+
+def betabinom_cdf_steps(successes, trials, draws: int) -> int:
+    """The steps :func:`betabinom_cdf_pairs` would take: per draw, the largest successes of
+    each distinct trials count (the walk up the mass function stops there)."""
+    n = np.asarray(trials, dtype=np.int64)
+    y = np.asarray(successes, dtype=np.int64)
+    if not n.size:
+        return 0
+    order = np.lexsort((y, n))
+    last = np.r_[n[order][1:] != n[order][:-1], True]
+    return int((y[order][last] + 1).sum()) * int(draws)
+
+
+def betabinom_cdf_pairs(successes, trials, a, b) -> tuple[np.ndarray, np.ndarray]:
+    """P(Y < y_i) and P(Y <= y_i) for Y ~ Beta-binomial(n_i, a_s, b_s): two (pairs, draws)
+    arrays, for every pair (y_i, n_i) and every (a_s, b_s).
+
+    Exact sums of the mass function, walked upward by its ratio
+    P(k + 1) / P(k) = (n - k)(k + a) / ((k + 1)(n - k - 1 + b)) from
+    P(0) = B(a, n + b) / B(a, b), once per draw and distinct n (pairs sorted by (n, y) share
+    the walk); the running term is rescaled so it neither overflows nor underflows. The cost
+    is :func:`betabinom_cdf_steps`; tests hold it to ``scipy.stats.betabinom.cdf``.
+    """
+    y = np.asarray(successes, dtype=np.int64).ravel()
+    n = np.asarray(trials, dtype=np.int64).ravel()
+    a = np.ascontiguousarray(np.atleast_1d(a), dtype=float).ravel()
+    b = np.ascontiguousarray(np.atleast_1d(b), dtype=float).ravel()
+    if np.any((y < 0) | (y > n)):
+        raise ValueError("betabinom_cdf_pairs needs 0 <= successes <= trials.")
+    order = np.lexsort((y, n))
+    below = np.empty((len(y), len(a)))
+    at = np.empty((len(y), len(a)))
+    _walk_kernel()(y[order], n[order], order, a, b, below, at)
+    return below, at
+
+
+def _walk(y, n, rows, a, b, below, at):  # pragma: no cover - compiled by numba
+    pairs = y.shape[0]
+    draws = a.shape[0]
+    off = np.empty(draws)  # log of the scale
+    scale = np.empty(draws)
+    term = np.empty(draws)  # P(k) = term * scale
+    cdf = np.empty(draws)  # P(Y < k)
+    i = 0
+    while i < pairs:
+        ni = n[i]
+        for s in range(draws):
+            off[s] = (math.lgamma(ni + b[s]) + math.lgamma(a[s] + b[s]) - math.lgamma(b[s])
+                      - math.lgamma(ni + a[s] + b[s]))  # log P(0)
+            scale[s] = math.exp(off[s])
+            term[s] = 1.0
+            cdf[s] = 0.0
+        k = 0
+        while i < pairs and n[i] == ni:
+            while k < y[i]:
+                common = (ni - k) / (k + 1.0)
+                for s in range(draws):
+                    cdf[s] += term[s] * scale[s]
+                    term[s] *= common * (k + a[s]) / (ni - k - 1.0 + b[s])
+                    if term[s] > 1e200 or (0.0 < term[s] < 1e-200):
+                        off[s] += math.log(term[s])
+                        scale[s] = math.exp(off[s])
+                        term[s] = 1.0
+                k += 1
+            row = rows[i]
+            for s in range(draws):
+                below[row, s] = min(cdf[s], 1.0)
+                at[row, s] = min(cdf[s] + term[s] * scale[s], 1.0)
+            i += 1
+
+
+_COMPILED = []
+
+
+def _walk_kernel():
+    """The compiled walk (numba, on first use; cached on disk)."""
+    if not _COMPILED:
+        import numba
+
+        _COMPILED.append(numba.njit(cache=True)(_walk))
+    return _COMPILED[0]

@@ -4,7 +4,9 @@ With one aggregated row per group, leaving a row out leaves a whole group out. P
 (Vehtari, Gelman & Gabry 2017; cited from memory) is run on ``y_group``, the log-likelihood with
 the group's own rate integrated out; where Pareto k says PSIS is unreliable and an exact value
 is cheap (closed forms, or a refit of the grid), the exact value replaces it. LOO-PIT values
-come from the same weights (randomised for the discrete outcome).
+come from the same weights applied to a new group's predictive CDF given each draw (exact for
+the Beta-binomial and binomial predictives, else replicates; randomised for the discrete
+outcome).
 """
 
 from __future__ import annotations
@@ -21,7 +23,13 @@ from ..models import attr, counts_of, log_likelihood_arrays, theta_draws
 from ..models._grid import HyperPrior, fit_grid
 from ..models._gridposterior import distinct_pairs
 from ..models._posterior import logit_means
-from ..models._stats import betabinom_cdf, betabinom_logpmf
+from ..models._stats import (
+    PAIR_CDF_STEPS,
+    betabinom_cdf,
+    betabinom_cdf_pairs,
+    betabinom_cdf_steps,
+    betabinom_logpmf,
+)
 from . import fast_psis
 from .settings import NOT_COMPUTED, CheckSettings
 from .settings import seed_of as _seed
@@ -305,56 +313,122 @@ def _pointwise_loo(ll: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndarray,
     return loo.loo_i.values, loo.pareto_k.values, float(loo.good_k)
 
 
+def _new_group_cdfs(idata, cols: np.ndarray, draws: np.ndarray):
+    """P(y_new < y_j) and P(y_new <= y_j) for a *new* group with each group's trials, given
+    each posterior draw (positions ``draws``): two (len(cols), len(draws)) arrays, exactly,
+    where the model's new-group predictive has a closed form and the walk is affordable
+    (EXCHANGEABLE_MODELS: a Beta-binomial, or a binomial for complete pooling); else None.
+
+    They replace the replicates of :func:`_new_group_replicates` in LOO-PIT, so its ends
+    carry no replicate noise: at a million groups 400 replicates per group moved the PIT
+    values' distribution by about 0.002, which the uniformity test detected.
+    """
+    model = attr(idata, "model")
+    data = counts_of(idata)
+    y = data.successes[cols]
+    n = data.trials[cols]
+    post = idata.posterior
+    if model == "complete-pooling":
+        rate = theta_draws(idata)[draws][:, cols[:1]].ravel()  # one shared rate per draw
+        yf, nf, q = y.astype(float)[:, None], n.astype(float)[:, None], 1 - rate[None, :]
+        # P(X <= k) = I_{1-p}(n - k, k + 1) for X ~ Binomial(n, p), k < n
+        with np.errstate(invalid="ignore", divide="ignore"):
+            at = np.where(yf >= nf, 1.0, special.betainc(np.maximum(nf - yf, 1), yf + 1, q))
+            below = np.where(yf > 0, special.betainc(nf - yf + 1, np.maximum(yf, 1), q), 0.0)
+        return below, at
+    if model == "beta-binomial":
+        mu = post["mu"].transpose("chain", "draw").values.ravel()[draws]
+        kappa = post["kappa"].transpose("chain", "draw").values.ravel()[draws]
+        a, b = mu * kappa, (1 - mu) * kappa
+    elif model == "no-pooling":  # the prior predictive, the same at every draw
+        prior = attr(idata, "priors")
+        a, b = np.array([float(prior["a"])]), np.array([float(prior["b"])])
+    else:
+        return None
+    if betabinom_cdf_steps(y, n, len(a)) > PAIR_CDF_STEPS:
+        return None
+    below, at = betabinom_cdf_pairs(y, n, a, b)
+    if len(a) < len(draws):
+        below, at = (np.repeat(x, len(draws), axis=1) for x in (below, at))
+    return below, at
+
+
+def _psis_log_weights(ll, reff: float) -> np.ndarray:
+    """Normalised PSIS log-weights of leaving each row of (groups, draws) ``ll`` out."""
+    if not USE_ARVIZ_PSIS:
+        return fast_psis.psis_log_weights(-ll, reff)[0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return np.asarray(az.psislw(-ll, reff)[0])
+
+
 def _pit_ends(y_obs, y_new, ll, reff: float) -> tuple[np.ndarray, np.ndarray]:
     """LOO-PIT's two ends (the weighted share of replicates below and at ``y_obs``) from the
     PSIS weights of (groups, draws) ``ll``, as ``az.loo_pit`` gives them (float counts)."""
+    log_w = _psis_log_weights(ll, reff)
     if not USE_ARVIZ_PSIS:
-        log_w, _ = fast_psis.psis_log_weights(-ll, reff)
         return (fast_psis.loo_pit(y_obs - 0.5, y_new, log_w),
                 fast_psis.loo_pit(y_obs, y_new, log_w))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        log_w, _ = az.psislw(-ll, reff)
         at = np.asarray(az.loo_pit(y=y_obs, y_hat=y_new, log_weights=log_w))
         below = np.asarray(az.loo_pit(y=y_obs - 0.5, y_hat=y_new, log_weights=log_w))
     return below, at
 
 
+def _exact_pit_ends(cdfs, ll, reff: float) -> tuple[np.ndarray, np.ndarray]:
+    """LOO-PIT's two ends: the PSIS-weighted means of the new group's exact CDFs."""
+    weights = np.exp(_psis_log_weights(ll, reff))
+    below, at = ((cdf * weights).sum(axis=1) for cdf in cdfs)
+    return np.minimum(below, 1.0), np.minimum(at, 1.0)
+
+
 def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
-    """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups."""
+    """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups.
+
+    Groups whose y_group depends on their counts alone share it (EXCHANGEABLE_MODELS): those
+    are computed once per distinct (successes, trials) pair over the whole table, in (trials,
+    successes) order, and broadcast back. LOO-PIT's ends are functions of the same weights and
+    the counts, so they are per pair too (each group's randomisation between them is its own).
+    """
     reff = _relative_efficiency(idata)
     y_all = counts_of(idata).successes.astype(float)
-    out = {name: np.empty(len(seen)) for name in ("elpd", "k", "lppd")}
-    out["constant"] = np.zeros(len(seen), dtype=bool)
-    out["below"] = np.full(len(seen), np.nan)
-    out["at"] = np.full(len(seen), np.nan)
-    out["pit_possible"] = True
-    out["good_k"] = float("nan")
-    pit_draws = thinned_draws(samples, settings.draws)
     pair = _pair_keys(idata)
-    for cols in column_chunks(np.arange(len(seen)), samples, settings.chunk_cells):
-        groups = seen[cols]
-        # groups whose y_group depends on their counts alone share it: PSIS once per pair
-        if pair is None:
-            reps, inv = groups, np.arange(len(groups))
-        else:
-            _, first, inv = np.unique(pair[groups], return_index=True, return_inverse=True)
-            reps, inv = groups[first], inv.ravel()
-        ll = _group_loglik(idata, reps)  # (distinct groups, samples)
-        elpd, k, out["good_k"] = _pointwise_loo(ll, reff)
-        out["elpd"][cols] = elpd[inv]
-        out["k"][cols] = k[inv]
-        out["lppd"][cols] = (special.logsumexp(ll, axis=1) - np.log(samples))[inv]
-        out["constant"][cols] = (np.ptp(ll, axis=1) == 0)[inv]
-        # LOO-PIT's two ends are functions of y_group's weights and the counts: once per
-        # pair too (each group's randomisation between them is its own)
+    if pair is None:
+        units, inv = seen, np.arange(len(seen))
+    else:
+        data = counts_of(idata)
+        _, first, inv = np.unique(pair[seen], return_index=True, return_inverse=True)
+        units = seen[first]
+        order = np.lexsort((data.successes[units], data.trials[units]))
+        rank = np.empty(len(order), dtype=np.int64)
+        rank[order] = np.arange(len(order))
+        units, inv = units[order], rank[inv.ravel()]
+    out = {name: np.empty(len(units)) for name in ("elpd", "k", "lppd")}
+    out["constant"] = np.zeros(len(units), dtype=bool)
+    out["below"] = np.full(len(units), np.nan)
+    out["at"] = np.full(len(units), np.nan)
+    pit_possible = True
+    good_k = float("nan")
+    pit_draws = thinned_draws(samples, settings.draws)
+    for cols in column_chunks(np.arange(len(units)), samples, settings.chunk_cells):
+        reps = units[cols]
+        ll = _group_loglik(idata, reps)  # (groups or distinct pairs, samples)
+        out["elpd"][cols], out["k"][cols], good_k = _pointwise_loo(ll, reff)
+        out["lppd"][cols] = special.logsumexp(ll, axis=1) - np.log(samples)
+        out["constant"][cols] = np.ptp(ll, axis=1) == 0
+        cdfs = _new_group_cdfs(idata, reps, pit_draws)
+        if cdfs is not None:
+            out["below"][cols], out["at"][cols] = _exact_pit_ends(cdfs, ll[:, pit_draws], reff)
+            continue
         y_new = _new_group_replicates(idata, reps, pit_draws, rng)
         if y_new is None:
-            out["pit_possible"] = False
+            pit_possible = False
             continue
-        below, at = _pit_ends(y_all[reps], y_new, ll[:, pit_draws], reff)
-        out["at"][cols] = at[inv]
-        out["below"][cols] = below[inv]
+        out["below"][cols], out["at"][cols] = _pit_ends(y_all[reps], y_new, ll[:, pit_draws],
+                                                        reff)
+    out = {name: value[inv] for name, value in out.items()}
+    out["pit_possible"], out["good_k"] = pit_possible, good_k
     return out
 
 
@@ -478,9 +552,12 @@ def pit_uniformity(table: pd.DataFrame, settings: CheckSettings) -> dict:
         "share_below_0.05": float(np.mean(pit < 0.05)),
         "share_above_0.95": float(np.mean(pit > 0.95)),
         "verdict": "miscalibrated" if test.pvalue < settings.lower else "calibrated",
-        "method": "randomised LOO-PIT (lower + U (upper - lower)) from PSIS weights of"
-        " y_group (workbench's vectorised PSIS, equal to ArviZ's psislw and loo_pit), or exact"
-        " where refitted; Kolmogorov-Smirnov test against Uniform(0, 1) (scipy.stats.kstest)",
+        "method": "randomised LOO-PIT (lower + U (upper - lower)): the PSIS-weighted (on"
+        " y_group; workbench's vectorised PSIS, equal to ArviZ's psislw) mean of a new group's"
+        " predictive CDF given each draw, exact where the model has one (Beta-binomial or"
+        " binomial), else the weighted share of one replicate per draw (as ArviZ's loo_pit);"
+        " exact where refitted; Kolmogorov-Smirnov test against Uniform(0, 1)"
+        " (scipy.stats.kstest)",
     }
 
 

@@ -691,9 +691,8 @@ def test_logit_normal_is_checked_and_compared_on_held_out_groups(spread):
 @pytest.mark.parametrize("model", ["beta-binomial", "complete-pooling", "no-pooling"])
 def test_groups_sharing_counts_share_one_psis_pass_with_the_same_values(model, monkeypatch):
     # where y_group depends on a group's (successes, trials) alone, PSIS runs once per
-    # distinct pair; the table must equal the group-by-group computation. LOO-PIT's ends are
-    # estimated once per pair from replicates, so they agree with the group-by-group ones
-    # within the replicates' Monte Carlo error (1,000 draws: sd at most 0.016)
+    # distinct pair; the table must equal the group-by-group computation, LOO-PIT included
+    # (its ends are exact given the weights: no replicate noise tells the two apart)
     rng = np.random.default_rng(11)
     n = rng.integers(1, 6, 400)
     counts = GroupCounts([f"g{i}" for i in range(400)], rng.binomial(n, 0.3), n)
@@ -701,16 +700,59 @@ def test_groups_sharing_counts_share_one_psis_pass_with_the_same_values(model, m
     shared = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(5))
     monkeypatch.setattr(loo_module, "_pair_keys", lambda idata: None)
     alone = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(5))
-    pit = ["loo_pit", "loo_pit_lower", "loo_pit_upper"]
-    pd.testing.assert_frame_equal(shared.table.drop(columns=pit), alone.table.drop(columns=pit),
-                                  check_exact=False, rtol=1e-12)
+    pd.testing.assert_frame_equal(shared.table, alone.table, check_exact=False, rtol=1e-12)
     assert shared.elpd_loo == pytest.approx(alone.elpd_loo, rel=1e-12)
-    ends = shared.table.groupby(["successes", "trials"])[pit[1:]]
+    ends = shared.table.groupby(["successes", "trials"])[["loo_pit_lower", "loo_pit_upper"]]
     assert (ends.nunique() == 1).all().all()  # one value per pair
-    for end in pit[1:]:
-        np.testing.assert_allclose(shared.table[end], alone.table[end], atol=0.08)
     # and the pairs really repeat: 400 groups, at most 20 distinct (successes, trials)
     assert shared.table[["successes", "trials"]].drop_duplicates().shape[0] <= 20
+
+
+def test_no_pooling_pit_ends_are_the_prior_predictive_cdf():
+    # A left-out group learns nothing from the others under no pooling: its LOO predictive is
+    # the prior predictive Beta-binomial(n, a, b) whatever the weights.
+    # reference: scipy.stats.betabinom.cdf
+    rng = np.random.default_rng(3)
+    n = rng.integers(1, 300, 150)
+    counts = GroupCounts([f"g{i}" for i in range(150)], rng.binomial(n, 0.2), n)
+    idata = make_model("no-pooling", random_seed=1, draws=200, a=2.0, b=3.0).fit(counts).idata_
+    t = loo_module.leave_one_group_out(idata).table
+    y, trials = t["successes"].to_numpy(), t["trials"].to_numpy()
+    np.testing.assert_allclose(t["loo_pit_lower"], stats.betabinom.cdf(y - 1, trials, 2.0, 3.0),
+                               atol=1e-10)
+    np.testing.assert_allclose(t["loo_pit_upper"], stats.betabinom.cdf(y, trials, 2.0, 3.0),
+                               atol=1e-10)
+
+
+def test_beta_binomial_pit_ends_agree_with_refitting_without_the_group():
+    # PSIS-weighted exact CDFs against the leave-one-group-out predictive computed by refitting
+    # the grid without each group (exact_leave_one_out): they differ only by PSIS's error and
+    # the draws' Monte Carlo error (400 independent draws)
+    rng = np.random.default_rng(8)
+    n = rng.integers(5, 200, 60)
+    counts = GroupCounts([f"g{i}" for i in range(60)], rng.binomial(n, rng.beta(3, 12, 60)), n)
+    idata = make_model("beta-binomial", random_seed=3, draws=100, chains=4).fit(counts).idata_
+    t = loo_module.leave_one_group_out(idata).table
+    picked = np.arange(0, 60, 6)
+    refit = loo_module.exact_leave_one_out(idata, picked)
+    np.testing.assert_allclose(t["loo_pit_lower"].to_numpy()[picked], refit["cdf_below"],
+                               atol=0.02)
+    np.testing.assert_allclose(t["loo_pit_upper"].to_numpy()[picked], refit["cdf_at"],
+                               atol=0.02)
+
+
+def test_pit_ends_fall_back_to_replicates_past_the_walk_budget(monkeypatch):
+    # when the exact CDF walk would take too long (huge trial counts), the replicates are used
+    rng = np.random.default_rng(4)
+    n = rng.integers(1, 50, 80)
+    counts = GroupCounts([f"g{i}" for i in range(80)], rng.binomial(n, 0.3), n)
+    idata = make_model("beta-binomial", random_seed=2, draws=100).fit(counts).idata_
+    exact = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(1)).table
+    monkeypatch.setattr(loo_module, "PAIR_CDF_STEPS", 0)
+    sampled = loo_module.leave_one_group_out(idata, rng=np.random.default_rng(1)).table
+    assert not np.allclose(exact["loo_pit_upper"], sampled["loo_pit_upper"])
+    # replicate shares are multiples of the (equal) weights; within their noise of the exact
+    np.testing.assert_allclose(exact["loo_pit_upper"], sampled["loo_pit_upper"], atol=0.15)
 
 
 @pytest.mark.parametrize("model", ["beta-binomial", "complete-pooling", "no-pooling"])
