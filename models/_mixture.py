@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy import special, stats
+
+from ._stats import betabinom_cdf_steps
 
 #: Most unique-pair x component cells for which mixture quantiles are solved exactly.
 EXACT_QUANTILE_CELLS = 10_000_000
@@ -35,9 +39,133 @@ def beta_cdf(alpha: np.ndarray, beta: np.ndarray, x: np.ndarray) -> np.ndarray:
     sd = np.sqrt(a * b / (s * s * (s + 1)))
     skew = 2 * (b - a) * np.sqrt(s + 1) / ((s + 2) * np.sqrt(a * b))
     z = (xb - mean) / sd
-    out[big] = np.clip(special.ndtr(z) - np.exp(-0.5 * z * z) / np.sqrt(2 * np.pi) * skew / 6
-                       * (z * z - 1), 0.0, 1.0)
+    out[big] = np.clip(
+        special.ndtr(z) - np.exp(-0.5 * z * z) / np.sqrt(2 * np.pi) * skew / 6 * (z * z - 1),
+        0.0,
+        1.0,
+    )
     return out
+
+
+#: Most steps (components x the longest walk of each distinct trials count) the CDF at one
+#: rate takes by :func:`beta_mixture_cdf_walk`; beyond it, one betainc per pair and component.
+WALK_STEPS = 4_000_000_000
+#: Largest bound on the walk's absolute error that is accepted; past it, betainc per pair.
+WALK_ERROR = 1e-9
+_EPS = np.finfo(float).eps
+
+
+def log_gamma_ratio(z: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """log Gamma(z + a) - log Gamma(z), without the cancellation of two large log-gammas.
+
+    Below z = 1,000 the two gammaln values are small enough to subtract (absolute error
+    under 1.3e-12). Above, Stirling's series for both, combined before rounding:
+    (z - 1/2) log1p(a/z) + a log(z + a) - a plus the difference of the 1/(12 z) - ...
+    corrections (series to z^-7; truncation error under 1e-24 there; the series is the
+    standard asymptotic expansion of log Gamma, common practice).
+    """
+    z, a = np.broadcast_arrays(np.asarray(z, dtype=float), np.asarray(a, dtype=float))
+    out = np.empty(z.shape)
+    small = z < 1000.0
+    out[small] = special.gammaln(z[small] + a[small]) - special.gammaln(z[small])
+    zl, al = z[~small], a[~small]
+
+    def corr(t):
+        t2 = 1.0 / (t * t)
+        return (1.0 / 12 - t2 * (1.0 / 360 - t2 * (1.0 / 1260 - t2 / 1680))) / t
+
+    out[~small] = (
+        (zl - 0.5) * np.log1p(al / zl) + al * np.log(zl + al) - al + corr(zl + al) - corr(zl)
+    )
+    return out
+
+
+def beta_mixture_cdf_walk(y, n, weights, a, b, x: float) -> np.ndarray | None:
+    """sum_k w_k I_x(a_k + y_i, b_k + n_i - y_i) for every pair (y_i, n_i), at one ``x``.
+
+    For fixed x, n and component, the Beta CDFs of consecutive successes differ by one
+    term: I_x(p, q) - I_x(p + 1, q - 1) = Gamma(p + q) / (Gamma(p + 1) Gamma(q)) x^p
+    (1 - x)^(q - 1) (the regularised incomplete Beta's recurrence), and consecutive terms by
+    the ratio x (q - 1) / ((1 - x)(p + 1)). So one betainc per component and distinct n
+    starts a walk up the successes that every pair with that n shares, in place of one
+    betainc per pair and component.
+
+    Its error is absolute: the first term's logarithm is a sum of large numbers, each
+    rounded (relative error eps), and that error scales every term subtracted; each step
+    adds a few eps more. When the bound on both exceeds ``WALK_ERROR`` (huge trials or
+    components), this returns None and the caller evaluates betainc per pair.
+    """
+    y = np.asarray(y, dtype=np.int64)
+    n = np.asarray(n, dtype=np.int64)
+    a = np.ascontiguousarray(a, dtype=float)
+    b = np.ascontiguousarray(b, dtype=float)
+    order = np.lexsort((y, n))
+    ys, ns = y[order], n[order]
+    starts = np.flatnonzero(np.r_[True, ns[1:] != ns[:-1]])
+    distinct = ns[starts].astype(float)
+    bn = b[None, :] + distinct[:, None]
+    power_a, power_b = a * np.log(x), (bn - 1) * np.log1p(-x)
+    log_a1 = special.gammaln(a + 1)
+    log_term = log_gamma_ratio(bn, a[None, :]) - log_a1 + power_a + power_b
+    longest = np.maximum.reduceat(ys, starts).astype(float)
+    # rounding of each part of the first term's logarithm (it scales all terms), and a
+    # few roundings per step of the walk
+    bound = 2 * _EPS * (np.abs(power_a) + np.abs(log_a1) + np.abs(power_b) + longest[:, None] + 10)
+    if not np.all(np.isfinite(log_term)) or bound.max(initial=0.0) > WALK_ERROR:
+        return None
+    start_cdf = special.betainc(a[None, :], bn, x)
+    out = np.zeros(len(y))
+    _cdf_walk_kernel()(
+        ys,
+        ns,
+        order,
+        starts,
+        np.ascontiguousarray(weights, dtype=float),
+        a,
+        b,
+        x,
+        start_cdf,
+        log_term,
+        out,
+    )
+    return np.clip(out, 0.0, 1.0)
+
+
+def _cdf_walk(ys, ns, rows, starts, w, a, b, x, start_cdf, log_term, out):  # pragma: no cover
+    pairs = ys.shape[0]
+    odds = x / (1.0 - x)
+    for j in range(starts.shape[0]):
+        first = starts[j]
+        last = starts[j + 1] if j + 1 < starts.shape[0] else pairs
+        ni = ns[first]
+        for k in range(a.shape[0]):
+            cdf = start_cdf[j, k]
+            off = log_term[j, k]
+            scale = math.exp(off)
+            term = 1.0  # the step from successes s to s + 1 is term * scale
+            s = 0
+            for i in range(first, last):
+                while s < ys[i]:
+                    cdf -= term * scale
+                    term *= odds * (b[k] + ni - s - 1.0) / (a[k] + s + 1.0)
+                    s += 1
+                    if term > 1e200 or (0.0 < term < 1e-200):
+                        off += math.log(term)
+                        scale = math.exp(off)
+                        term = 1.0
+                out[rows[i]] += w[k] * cdf
+
+
+_COMPILED = []
+
+
+def _cdf_walk_kernel():
+    """The compiled walk (numba, on first use; cached on disk)."""
+    if not _COMPILED:
+        import numba
+
+        _COMPILED.append(numba.njit(cache=True)(_cdf_walk))
+    return _COMPILED[0]
 
 
 class BetaPosteriors:
@@ -176,7 +304,13 @@ class BetaMixturePosteriors:
         return out
 
     def cdf(self, x: float) -> np.ndarray:
-        return self._pair_cdf(np.full(len(self.y), float(x)))[self.index]
+        x = float(x)
+        weights, a, b = self._cdf
+        if 0.0 < x < 1.0 and betabinom_cdf_steps(self.y, self.n, len(a)) <= WALK_STEPS:
+            walked = beta_mixture_cdf_walk(self.y, self.n, weights, a, b, x)
+            if walked is not None:
+                return walked[self.index]
+        return self._pair_cdf(np.full(len(self.y), x))[self.index]
 
     def sf(self, x: float) -> np.ndarray:
         return 1.0 - self.cdf(x)
