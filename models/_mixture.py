@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -156,16 +157,12 @@ def _cdf_walk(ys, ns, rows, starts, w, a, b, x, start_cdf, log_term, out):  # pr
                 out[rows[i]] += w[k] * cdf
 
 
-_COMPILED = []
-
-
+@functools.cache
 def _cdf_walk_kernel():
     """The compiled walk (numba, on first use; cached on disk)."""
-    if not _COMPILED:
-        import numba
+    import numba
 
-        _COMPILED.append(numba.njit(cache=True)(_cdf_walk))
-    return _COMPILED[0]
+    return numba.njit(cache=True)(_cdf_walk)
 
 
 class BetaPosteriors:

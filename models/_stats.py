@@ -10,6 +10,7 @@
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -166,13 +167,9 @@ def _walk(y, n, rows, a, b, below, at):  # pragma: no cover - compiled by numba
             i += 1
 
 
-_COMPILED = []
-
-
+@functools.cache
 def _walk_kernel():
     """The compiled walk (numba, on first use; cached on disk)."""
-    if not _COMPILED:
-        import numba
+    import numba
 
-        _COMPILED.append(numba.njit(cache=True)(_walk))
-    return _COMPILED[0]
+    return numba.njit(cache=True)(_walk)
