@@ -19,7 +19,7 @@ import pandas as pd
 import xarray as xr
 from scipy import special, stats
 
-from ..models import attr, counts_of, log_likelihood_arrays, theta_draws
+from ..models import GroupCounts, attr, counts_of, log_likelihood_arrays, theta_draws
 from ..models._grid import HyperPrior, fit_grid
 from ..models._gridposterior import distinct_pairs
 from ..models._posterior import logit_means
@@ -281,12 +281,11 @@ def _unavailable(idata, samples: int, seen: np.ndarray) -> str | None:
 EXCHANGEABLE_MODELS = ("beta-binomial", "no-pooling", "complete-pooling")
 
 
-def _pair_keys(idata) -> np.ndarray | None:
+def _pair_keys(idata, data: GroupCounts) -> np.ndarray | None:
     """One key per group for its (successes, trials) pair where equal pairs give equal
     y_group draws (EXCHANGEABLE_MODELS); None where they need not."""
     if attr(idata, "model") not in EXCHANGEABLE_MODELS:
         return None
-    data = counts_of(idata)
     return distinct_pairs(data.successes, data.trials)[1]
 
 
@@ -324,9 +323,10 @@ def _new_group_cdfs(idata, cols: np.ndarray, draws: np.ndarray):
     values' distribution by about 0.002, which the uniformity test detected.
     """
     model = attr(idata, "model")
-    data = counts_of(idata)
-    y = data.successes[cols]
-    n = data.trials[cols]
+    # the fitted counts as stored (checked when fitted; counts_of would check a million
+    # names again on every chunk)
+    y = idata.observed_data["successes"].values[cols]
+    n = idata.constant_data["trials"].values[cols]
     post = idata.posterior
     if model == "complete-pooling":
         rate = theta_draws(idata)[draws][:, cols[:1]].ravel()  # one shared rate per draw
@@ -383,7 +383,7 @@ def _exact_pit_ends(cdfs, ll, reff: float) -> tuple[np.ndarray, np.ndarray]:
     return np.minimum(below, 1.0), np.minimum(at, 1.0)
 
 
-def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
+def _psis_pass(idata, data: GroupCounts, seen, samples, settings: CheckSettings, rng) -> dict:
     """PSIS-LOO and PSIS LOO-PIT for every group with trials, by chunks of groups.
 
     Groups whose y_group depends on their counts alone share it (EXCHANGEABLE_MODELS): those
@@ -392,12 +392,11 @@ def _psis_pass(idata, seen, samples, settings: CheckSettings, rng) -> dict:
     the counts, so they are per pair too (each group's randomisation between them is its own).
     """
     reff = _relative_efficiency(idata)
-    y_all = counts_of(idata).successes.astype(float)
-    pair = _pair_keys(idata)
+    y_all = data.successes.astype(float)
+    pair = _pair_keys(idata, data)
     if pair is None:
         units, inv = seen, np.arange(len(seen))
     else:
-        data = counts_of(idata)
         _, first, inv = np.unique(pair[seen], return_index=True, return_inverse=True)
         units = seen[first]
         order = np.lexsort((data.successes[units], data.trials[units]))
@@ -462,7 +461,7 @@ def leave_one_group_out(
         # ArviZ's own k threshold is read from its PSIS-LOO result, which is not computed here
         return GroupLoo(pd.DataFrame(columns=GROUP_COLUMNS), np.nan, np.nan, np.nan, samples,
                         float("nan"), len(seen), [why], available=False)
-    psis = _psis_pass(idata, seen, samples, settings, rng)
+    psis = _psis_pass(idata, data, seen, samples, settings, rng)
     elpd_psis, pareto_k, lppd, constant = psis["elpd"], psis["k"], psis["lppd"], psis["constant"]
     pit_below, pit_at, good_k = psis["below"], psis["at"], psis["good_k"]
     pareto_k[constant] = np.nan  # undefined: every draw gives the same value
