@@ -8,8 +8,6 @@ import math
 import numpy as np
 from scipy import special, stats
 
-from ._stats import betabinom_cdf_steps
-
 #: Most unique-pair x component cells for which mixture quantiles are solved exactly.
 EXACT_QUANTILE_CELLS = 10_000_000
 _CHUNK_CELLS = 4_000_000
@@ -94,21 +92,26 @@ def beta_mixture_cdf_walk(y, n, weights, a, b, x: float) -> np.ndarray | None:
     Its error is absolute: the first term's logarithm is a sum of large numbers, each
     rounded (relative error eps), and that error scales every term subtracted; each step
     adds a few eps more. When the bound on both exceeds ``WALK_ERROR`` (huge trials or
-    components), this returns None and the caller evaluates betainc per pair.
+    components), or the walk would take more than ``WALK_STEPS`` steps, this returns None
+    and the caller evaluates betainc per pair.
     """
     y = np.asarray(y, dtype=np.int64)
     n = np.asarray(n, dtype=np.int64)
     a = np.ascontiguousarray(a, dtype=float)
     b = np.ascontiguousarray(b, dtype=float)
+    if not len(y):
+        return np.zeros(0)
     order = np.lexsort((y, n))
     ys, ns = y[order], n[order]
     starts = np.flatnonzero(np.r_[True, ns[1:] != ns[:-1]])
+    longest = np.maximum.reduceat(ys, starts).astype(float)
+    if (longest + 1).sum() * len(a) > WALK_STEPS:
+        return None
     distinct = ns[starts].astype(float)
     bn = b[None, :] + distinct[:, None]
     power_a, power_b = a * np.log(x), (bn - 1) * np.log1p(-x)
     log_a1 = special.gammaln(a + 1)
     log_term = log_gamma_ratio(bn, a[None, :]) - log_a1 + power_a + power_b
-    longest = np.maximum.reduceat(ys, starts).astype(float)
     # rounding of each part of the first term's logarithm (it scales all terms), and a
     # few roundings per step of the walk
     bound = 2 * _EPS * (np.abs(power_a) + np.abs(log_a1) + np.abs(power_b) + longest[:, None] + 10)
@@ -303,7 +306,7 @@ class BetaMixturePosteriors:
     def cdf(self, x: float) -> np.ndarray:
         x = float(x)
         weights, a, b = self._cdf
-        if 0.0 < x < 1.0 and betabinom_cdf_steps(self.y, self.n, len(a)) <= WALK_STEPS:
+        if 0.0 < x < 1.0:
             walked = beta_mixture_cdf_walk(self.y, self.n, weights, a, b, x)
             if walked is not None:
                 return walked[self.index]

@@ -312,7 +312,7 @@ def _pointwise_loo(ll: np.ndarray, reff: float) -> tuple[np.ndarray, np.ndarray,
     return loo.loo_i.values, loo.pareto_k.values, float(loo.good_k)
 
 
-def _new_group_cdfs(idata, cols: np.ndarray, draws: np.ndarray):
+def _new_group_cdfs(idata, data: GroupCounts, cols: np.ndarray, draws: np.ndarray):
     """P(y_new < y_j) and P(y_new <= y_j) for a *new* group with each group's trials, given
     each posterior draw (positions ``draws``): two (len(cols), len(draws)) arrays, exactly,
     where the model's new-group predictive has a closed form and the walk is affordable
@@ -323,10 +323,8 @@ def _new_group_cdfs(idata, cols: np.ndarray, draws: np.ndarray):
     values' distribution by about 0.002, which the uniformity test detected.
     """
     model = attr(idata, "model")
-    # the fitted counts as stored (checked when fitted; counts_of would check a million
-    # names again on every chunk)
-    y = idata.observed_data["successes"].values[cols]
-    n = idata.constant_data["trials"].values[cols]
+    y = data.successes[cols]
+    n = data.trials[cols]
     post = idata.posterior
     if model == "complete-pooling":
         rate = theta_draws(idata)[draws][:, cols[:1]].ravel()  # one shared rate per draw
@@ -416,7 +414,7 @@ def _psis_pass(idata, data: GroupCounts, seen, samples, settings: CheckSettings,
         out["elpd"][cols], out["k"][cols], good_k = _pointwise_loo(ll, reff)
         out["lppd"][cols] = special.logsumexp(ll, axis=1) - np.log(samples)
         out["constant"][cols] = np.ptp(ll, axis=1) == 0
-        cdfs = _new_group_cdfs(idata, reps, pit_draws)
+        cdfs = _new_group_cdfs(idata, data, reps, pit_draws)
         if cdfs is not None:
             out["below"][cols], out["at"][cols] = _exact_pit_ends(cdfs, ll[:, pit_draws], reff)
             continue
